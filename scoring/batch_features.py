@@ -1,0 +1,307 @@
+"""Feature vectors of a whole history at once, equal to what the per-event engine reads.
+
+The per-event engine keeps, per identifier, forward-decay sums per landmark epoch and reads them
+before each event. Over a sorted history the same numbers are prefix sums: for each identifier
+*segment* (its events until a gap longer than the record lifetime resets it, as the store's TTL
+does) and each epoch, the sum of the factors of the earlier events. This module computes them
+column-wise with numpy, in the same order of additions (each run of one segment and one epoch is
+summed sequentially from zero, like the per-event dictionary), the same landmarks, the same
+pruning and the same reading rule, so both paths agree to the last few units in the last place.
+
+Fan-out sketches become running maxima per bucket; first seen, the first event of a segment;
+label statistics are replayed exactly from the label applications (`LabelSums`).
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+import numpy as np
+
+from scoring.batch_plan import PlannedColumns
+from scoring.config import ScoringConfig
+from scoring.decay import EPOCH_HALF_LIVES
+from scoring.features import EVENT_TYPES, FLAGS, FeatureLayout, horizon_label
+from scoring.fanout import linear_count
+
+
+@dataclass
+class KindIndex:
+    """Events carrying one kind, grouped: ``order`` sorts them by (segment, time)."""
+
+    order: np.ndarray  # event positions, grouped by segment, time order inside
+    segment: np.ndarray  # per position in `order`: dense segment id
+    starts: np.ndarray  # per position in `order`: first event of its segment
+    seg_of_event: np.ndarray  # per event (input order): segment id, -1 when absent
+
+
+def index_kind(ids: np.ndarray, ts_s: np.ndarray, ttl_s: float) -> KindIndex:
+    """Group the events of one kind by identifier and lifetime segment."""
+    present = np.flatnonzero(ids >= 0)
+    order = present[np.lexsort((present, ids[present]))]
+    sorted_ids = ids[order]
+    t = ts_s[order]
+    starts = np.ones(len(order), dtype=bool)
+    if len(order) > 1:
+        same = sorted_ids[1:] == sorted_ids[:-1]
+        gap = t[1:] - np.floor(t[:-1]) > ttl_s
+        starts[1:] = ~same | gap
+    segment = np.cumsum(starts) - 1
+    seg_of_event = np.full(len(ids), -1, dtype=np.int64)
+    seg_of_event[order] = segment
+    return KindIndex(order, segment, starts, seg_of_event)
+
+
+def _runs(keys: np.ndarray) -> np.ndarray:
+    """Start flags of runs of equal consecutive keys."""
+    starts = np.ones(len(keys), dtype=bool)
+    if len(keys) > 1:
+        starts[1:] = keys[1:] != keys[:-1]
+    return starts
+
+
+def segmented_cumsum(values: np.ndarray, starts: np.ndarray) -> np.ndarray:
+    """Inclusive prefix sums that restart at each run start, summed sequentially from zero.
+
+    Runs of equal length are stacked and summed along rows, so the additions happen in the same
+    order, from the same zero, as a running total per run would make them.
+
+    >>> segmented_cumsum(np.array([1.0, 2.0, 3.0, 4.0]), np.array([True, False, True, False]))
+    array([1., 3., 3., 7.])
+    """
+    out = np.empty_like(values)
+    first = np.flatnonzero(starts)
+    lengths = np.diff(np.append(first, len(values)))
+    for length in np.unique(lengths):
+        rows = first[lengths == length]
+        idx = rows[:, None] + np.arange(length)
+        out[idx] = np.cumsum(values[idx], axis=1)
+    return out
+
+
+def epoch_factors(ts_s: np.ndarray, half_life_s: float) -> tuple[np.ndarray, np.ndarray]:
+    """Landmark epoch and forward-decay factor of each time (as `decay.forward_weight`)."""
+    epoch = np.floor(ts_s / (EPOCH_HALF_LIVES * half_life_s)).astype(np.int64)
+    landmark = epoch * EPOCH_HALF_LIVES * half_life_s
+    return epoch, np.power(2.0, (ts_s - landmark) / half_life_s)
+
+
+class _Sums:
+    """Reads "state before each event" of per-(segment, epoch) forward-decay sums.
+
+    Positions are in `KindIndex.order`. Before an event, its identifier's record holds the sum of
+    its own epoch's earlier events (when there are any) and the sum of the previous epoch's run;
+    the per-event reader adds the older entry first, then the current one, dividing by the
+    event's factor (and by ``2**512`` for the previous epoch); entries two epochs old are skipped.
+    """
+
+    def __init__(self, index: KindIndex, epoch: np.ndarray) -> None:
+        self.epoch = epoch  # already in index order
+        self.seg_starts = index.starts
+        self.run_starts = index.starts | _runs(self.epoch)
+        positions = np.arange(len(self.epoch))
+        self.run_first = np.maximum.accumulate(np.where(self.run_starts, positions, 0))
+
+    def read(self, values: np.ndarray, factor: np.ndarray) -> np.ndarray:
+        n = len(values)
+        if n == 0:
+            return np.zeros(0)
+        inclusive = segmented_cumsum(values, self.run_starts)
+        cur = ~self.run_starts
+        cur_term = np.zeros(n)
+        inner = np.flatnonzero(cur)
+        cur_term[inner] = inclusive[inner - 1] / factor[inner]
+        first = self.run_first
+        prev_last = np.maximum(first - 1, 0)
+        prev_ok = ~self.seg_starts[first] & (self.epoch[prev_last] == self.epoch - 1)
+        prev_term = np.where(prev_ok, inclusive[prev_last] / factor * 2.0**-EPOCH_HALF_LIVES, 0.0)
+        return np.where(prev_ok & cur, prev_term + cur_term, np.where(prev_ok, prev_term, cur_term))
+
+
+def _kind_counts(
+    index: KindIndex, cols: PlannedColumns, config: ScoringConfig
+) -> tuple[list[np.ndarray], np.ndarray | None, np.ndarray | None]:
+    """Counts per half-life (index order) and, for the amount kind, spend and has-spent."""
+    ts = cols.ts_s[index.order]
+    counts = []
+    spent = has_spent = None
+    last = len(config.half_lives_s) - 1
+    for j, h in enumerate(config.half_lives_s):
+        epoch, factor = epoch_factors(ts, h)
+        sums = _Sums(index, epoch)
+        counts.append(sums.read(factor, factor))
+        if j == last:
+            amount = cols.amount[index.order]
+            paid = np.nan_to_num(amount, nan=0.0) > 0.0
+            spent = sums.read(np.where(paid, amount * factor, 0.0), factor)
+            paid_before = segmented_cumsum(paid.astype(np.float64), index.starts) - paid
+            has_spent = paid_before > 0
+    return counts, spent, has_spent
+
+
+def _fanout_occupancy(
+    index: KindIndex,
+    target_buckets: np.ndarray,
+    ts_s: np.ndarray,
+    windows_s: tuple[float, float],
+    buckets: int,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Occupied buckets in both windows, and whether the target's own bucket was hit (long)."""
+    order = index.order
+    t = ts_s[order]
+    t_int = np.floor(t).astype(np.int64)
+    tb = target_buckets[order]
+    seg = index.segment
+    big = np.int64(1) << np.int64(32)  # whole seconds stay below 2**32 until 2106
+    occ_short = np.zeros(len(order), dtype=np.int64)
+    occ_long = np.zeros(len(order), dtype=np.int64)
+    own_last = np.full(len(order), -1, dtype=np.int64)
+    base = seg * big
+    short_since, long_since = t - windows_s[0], t - windows_s[1]
+    for b in range(buckets):
+        hit = tb == b
+        if not hit.any():
+            continue
+        stamp = np.where(hit, base + t_int, -1)
+        running = np.maximum.accumulate(stamp)
+        before = np.empty_like(running)
+        before[0] = -1
+        before[1:] = running[:-1]
+        last = np.where(before >= base, before - base, -1)
+        valid = last >= 0
+        occ_long += valid & (last > long_since)
+        occ_short += valid & (last > short_since)
+        own_last = np.where(tb == b, last, own_last)
+    return occ_short, occ_long, own_last
+
+
+class BatchFeatureReader:
+    """Feature matrix of planned columns (rows in input order), as `FeatureReader` reads them."""
+
+    def __init__(self, config: ScoringConfig) -> None:
+        self.config = config
+        self.layout = FeatureLayout.of(config)
+        self._col = {name: i for i, name in enumerate(self.layout.names)}
+        m = config.fanout_buckets
+        self._log_counts = np.array([math.log1p(linear_count(k, m)) for k in range(m + 1)])
+
+    def read(
+        self,
+        cols: PlannedColumns,
+        indexes: dict[str, KindIndex],
+        bad: dict[str, np.ndarray],
+        observed_since_s: float,
+    ) -> np.ndarray:
+        """Features of every event; ``bad[kind]`` is the label-sum read per event (NaN: none)."""
+        n = len(cols)
+        x = np.zeros((n, len(self.layout.names)))
+        exposure: dict[str, np.ndarray] = {}
+        spend: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None
+        for kind in self.config.kinds:
+            index = indexes[kind]
+            counts, spent, has_spent = _kind_counts(index, cols, self.config)
+            self._kind_columns(x, kind, index, counts, cols, observed_since_s)
+            exposure[kind] = counts[self.config.exposure_index]
+            if kind == self.config.amount_kind and spent is not None and has_spent is not None:
+                spend = (spent, has_spent, counts[-1])
+        for kind in self.config.label_kinds:
+            self._bad_column(x, kind, indexes[kind], exposure[kind], bad.get(kind))
+        for kind, target in self.config.fanout:
+            self._fanout_columns(x, kind, target, indexes[kind], cols)
+        self._event_columns(x, cols, indexes, spend)
+        return x
+
+    def _kind_columns(
+        self,
+        x: np.ndarray,
+        kind: str,
+        index: KindIndex,
+        counts: Sequence[np.ndarray],
+        cols: PlannedColumns,
+        observed_since_s: float,
+    ) -> None:
+        order, starts = index.order, index.starts
+        seen = ~starts
+        rows = order[seen]
+        for h, c in zip(self.config.half_lives_s, counts, strict=True):
+            col = self._col[f"{kind}.n_{horizon_label(h)}"]
+            value = c[seen]
+            x[rows, col] = np.where(value > 0.0, np.log1p(np.maximum(value, 0.0)), 0.0)
+        first_pos = np.maximum.accumulate(np.where(starts, np.arange(len(order)), 0))
+        first_s = np.floor(cols.ts_s[order[first_pos]])
+        age_s = cols.ts_s[order] - first_s
+        censor_before = observed_since_s + self.config.warmup_s
+        censored = (first_s < censor_before) & (age_s < self.config.censored_age_s)
+        age_s = np.where(censored, self.config.censored_age_s, age_s)
+        age = np.where(age_s > 0, np.log1p(np.maximum(age_s, 0.0) / 86400.0), 0.0)
+        x[rows, self._col[f"{kind}.age_d"]] = age[seen]
+        x[order[starts], self._col[f"{kind}.new"]] = 1.0
+
+    def _bad_column(
+        self,
+        x: np.ndarray,
+        kind: str,
+        index: KindIndex,
+        exposure: np.ndarray,
+        bad_sum: np.ndarray | None,
+    ) -> None:
+        order, seen = index.order, ~index.starts
+        cfg = self.config
+        bad = np.zeros(len(order)) if bad_sum is None else np.nan_to_num(bad_sum[order], nan=0.0)
+        bad = np.maximum(bad, 0.0)
+        alpha, alpha_beta = cfg.prior_alpha, cfg.prior_alpha + cfg.prior_beta
+        rate = np.minimum((alpha + bad) / (alpha_beta + np.maximum(exposure, bad)), 0.999)
+        value = np.log(rate / (1.0 - rate)) - cfg.base_logit
+        x[order[seen], self._col[f"{kind}.bad"]] = value[seen]
+
+    def _fanout_columns(
+        self, x: np.ndarray, kind: str, target: str, index: KindIndex, cols: PlannedColumns
+    ) -> None:
+        short, long_ = (horizon_label(w) for w in self.config.fanout_windows_s)
+        occ_short, occ_long, own_last = _fanout_occupancy(
+            index,
+            cols.buckets[target],
+            cols.ts_s,
+            self.config.fanout_windows_s,
+            self.config.fanout_buckets,
+        )
+        order, seen = index.order, ~index.starts
+        rows = order[seen]
+        x[rows, self._col[f"{kind}.{target}s_{short}"]] = self._log_counts[occ_short[seen]]
+        x[rows, self._col[f"{kind}.{target}s_{long_}"]] = self._log_counts[occ_long[seen]]
+        t = cols.ts_s[order]
+        target_present = cols.ids[target][order] >= 0
+        unseen = seen & target_present & ((own_last < 0) | (own_last <= t - self.config.fanout_windows_s[1]))
+        x[order[unseen], self._col[f"{kind}.{target}_unseen"]] = 1.0
+
+    def _event_columns(
+        self,
+        x: np.ndarray,
+        cols: PlannedColumns,
+        indexes: dict[str, KindIndex],
+        spend: tuple[np.ndarray, np.ndarray, np.ndarray] | None,
+    ) -> None:
+        for i, event_type in enumerate(EVENT_TYPES):
+            x[cols.type_index == i, self._col[f"type.{event_type}"]] = 1.0
+        amount = cols.amount
+        paid = np.nan_to_num(amount, nan=0.0) > 0.0
+        x[paid, self._col["amount.log"]] = np.log1p(amount[paid])
+        if spend is not None:
+            spent, has_spent, events = spend
+            index = indexes[self.config.amount_kind]
+            order = index.order
+            a = amount[order]
+            ok = (
+                paid[order]
+                & ~index.starts
+                & has_spent
+                & (events > 0.0)
+                & (spent > 0.0)
+            )
+            with np.errstate(divide="ignore", invalid="ignore"):
+                vs = np.log((a + 1.0) / (spent / events + 1.0))
+            x[order[ok], self._col["amount.vs_usual"]] = vs[ok]
+        for i, flag in enumerate(FLAGS):
+            x[cols.flags[:, i], self._col[f"flag.{flag}"]] = 1.0

@@ -1,0 +1,158 @@
+"""Columnar planning for the batch path: identifier codes, buckets and flags of many events.
+
+`Planner.plan` normalises and hashes one event; this module does the same for whole columns,
+normalising each distinct raw value once with the very same per-field normalisers that
+`normalise_event` combines, so both paths see identical keys and flags.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+
+import numpy as np
+
+from scoring.config import ScoringConfig
+from scoring.features import EVENT_TYPES, FLAGS
+from scoring.hashing import KeyHasher
+from scoring.identifiers import (
+    Normalised,
+    normalise_email,
+    normalise_ip,
+    normalise_opaque,
+    normalise_phone,
+)
+
+FIELDS = ("account_id", "device_id", "ip", "phone", "email")
+_FLAG_BITS = {flag: 1 << i for i, flag in enumerate(FLAGS)}
+
+
+@dataclass
+class PlannedColumns:
+    """Events as the batch path needs them, in input order.
+
+    ``ids[kind]`` holds a dense identifier code per event (-1 when absent), ``buckets[kind]``
+    that identifier's fan-out bucket, ``digests[kind][code]`` its keyed digest.
+    """
+
+    ts_s: np.ndarray
+    type_index: np.ndarray
+    amount: np.ndarray
+    flags: np.ndarray
+    ids: dict[str, np.ndarray]
+    buckets: dict[str, np.ndarray]
+    digests: dict[str, list[bytes]]
+    sampled: np.ndarray
+
+    def __len__(self) -> int:
+        return len(self.ts_s)
+
+
+def _normaliser(field: str, default_region: str | None) -> Callable[[str], Normalised]:
+    if field == "account_id":
+        return lambda raw: normalise_opaque("account", raw)
+    if field == "device_id":
+        return lambda raw: normalise_opaque("device", raw)
+    if field == "ip":
+        return normalise_ip
+    if field == "phone":
+        return lambda raw: normalise_phone(raw, default_region)
+    return normalise_email
+
+
+def _factorise(values: Sequence[str | None]) -> tuple[np.ndarray, list[str]]:
+    """Codes of each value (-1 for None) and the distinct values in order of first appearance."""
+    seen: dict[str, int] = {}
+    codes = np.fromiter(
+        (-1 if v is None else seen.setdefault(v, len(seen)) for v in values),
+        dtype=np.int64,
+        count=len(values),
+    )
+    return codes, list(seen)
+
+
+class ColumnPlanner:
+    """Plans columns of events under one configuration and hashing secret."""
+
+    def __init__(
+        self, config: ScoringConfig, hasher: KeyHasher, default_region: str | None = None
+    ) -> None:
+        self.config = config
+        self.hasher = hasher
+        self.default_region = default_region
+        self._sample_below = int(config.negative_sample_rate * 2**32)
+
+    def plan(
+        self,
+        event_id: Sequence[str],
+        ts_s: np.ndarray,
+        event_type: Sequence[str],
+        amount: np.ndarray,
+        fields: dict[str, Sequence[str | None]],
+    ) -> PlannedColumns:
+        """Plan events given as columns; ``fields`` maps each of `FIELDS` to its column."""
+        n = len(event_id)
+        tracked = set(self.config.kinds)
+        m = self.config.fanout_buckets
+        ids: dict[str, np.ndarray] = {}
+        buckets: dict[str, np.ndarray] = {}
+        digests: dict[str, list[bytes]] = {}
+        flags = np.zeros(n, dtype=np.int64)
+        for field in FIELDS:
+            codes, distinct = _factorise(fields[field])
+            normalise = _normaliser(field, self.default_region)
+            results = [normalise(raw) for raw in distinct]
+            flag_bits = np.array(
+                [sum(_FLAG_BITS.get(f, 0) for f in r.flags) for r in results] + [0],
+                dtype=np.int64,
+            )
+            flags |= flag_bits[codes]  # code -1 picks the trailing 0
+            for kind in {k for r in results for k, _ in r.keys} & tracked:
+                per_value, kind_digests = self._kind_codes(kind, results)
+                lookup = np.append(per_value, -1)
+                ids[kind] = lookup[codes]
+                digests[kind] = kind_digests
+                kind_buckets = np.array(
+                    [int.from_bytes(d[4:8], "big") % m for d in kind_digests] + [-1],
+                    dtype=np.int64,
+                )
+                buckets[kind] = kind_buckets[ids[kind]]
+        for kind in self.config.kinds:
+            if kind not in ids:
+                ids[kind] = np.full(n, -1, dtype=np.int64)
+                buckets[kind] = np.full(n, -1, dtype=np.int64)
+                digests[kind] = []
+        type_codes = {t: i for i, t in enumerate(EVENT_TYPES)}
+        return PlannedColumns(
+            ts_s=np.asarray(ts_s, dtype=np.float64),
+            type_index=np.array([type_codes.get(t, -1) for t in event_type], dtype=np.int64),
+            amount=np.asarray(amount, dtype=np.float64),
+            flags=(flags[:, None] >> np.arange(len(FLAGS))) & 1 == 1,
+            ids=ids,
+            buckets=buckets,
+            digests=digests,
+            sampled=self._sampled(event_id),
+        )
+
+    def _kind_codes(
+        self, kind: str, results: list[Normalised]
+    ) -> tuple[np.ndarray, list[bytes]]:
+        """Per distinct raw value, the code of its key of ``kind`` (-1 if none); the digests."""
+        digest = self.hasher.digest
+        codes: dict[bytes, int] = {}
+        per_value = np.full(len(results), -1, dtype=np.int64)
+        for i, r in enumerate(results):
+            value = r.get(kind)
+            if value is not None:
+                per_value[i] = codes.setdefault(digest(kind, value), len(codes))
+        return per_value, list(codes)
+
+    def _sampled(self, event_id: Sequence[str]) -> np.ndarray:
+        """Which events the maturity learning samples (the engine's rule, on the event digest)."""
+        hash_text = self.hasher.hash_text
+        below = self._sample_below
+        return np.fromiter(
+            (int.from_bytes(hash_text("event", e)[:4], "big") < below for e in event_id),
+            dtype=bool,
+            count=len(event_id),
+        )

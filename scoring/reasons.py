@@ -1,0 +1,103 @@
+"""Reasons in plain words: each names the identifier kind and the statistic behind it.
+
+Reasons are produced from a code (what) and a number (how much). The wording is ours and kept in
+one place so that it stays consistent across the service, the backfill files and the reports.
+"""
+
+from __future__ import annotations
+
+import math
+
+KIND_WORDS = {
+    "account": "account",
+    "device": "device",
+    "ip": "IP address",
+    "ip_net": "IP network",
+    "phone": "phone number",
+    "phone_prefix": "phone number prefix",
+    "email": "e-mail address",
+    "email_domain": "e-mail domain",
+}
+HORIZON_WORDS = {"1h": "hour", "1d": "day", "30d": "30 days"}
+
+_FIXED = {
+    "email.disposable": "e-mail domain: on the disposable-address list",
+    "phone.invalid": "phone number: not a valid number",
+    "phone.voip": "phone number: a VoIP number",
+    "ip.special": "IP address: in a special-purpose (non-public) range",
+    "phone.no_country": "phone number: no country code",
+    "email.subaddress": "e-mail address: uses a +tag sub-address",
+    "ip.invalid": "IP address: not a valid address",
+    "ip.v6": "IP address: IPv6",
+    "email.invalid": "e-mail address: not a valid address",
+}
+
+
+def _count(v: float) -> str:
+    return f"{v:.0f}" if v >= 1.5 else f"{v:.1f}"
+
+
+def _per_stat(kind_words: str, stat: str, value: float) -> str | None:
+    if stat.startswith("n_"):
+        horizon = HORIZON_WORDS.get(stat[2:], stat[2:])
+        return f"{kind_words}: {_count(value)} events in the last {horizon} (decayed count)"
+    if stat == "age_d":
+        return f"{kind_words}: first seen {value:.1f} days ago"
+    if stat == "new":
+        return f"{kind_words}: never seen before"
+    if stat == "bad":
+        return f"{kind_words}: confirmed fraud at about {math.exp(value):.0f}x the usual rate"
+    if stat == "young_hub":
+        return f"{kind_words}: new, yet already used by about {_count(value)} accounts today"
+    if stat == "accounts":
+        return f"{kind_words}: used by about {_count(value)} accounts recently"
+    if stat == "velocity":
+        return f"{kind_words}: {_count(value)} events in the last hour"
+    if stat == "new_device_and_network":
+        return f"{kind_words}: {value:.0f} days old, now on a device and network it never used"
+    return None
+
+
+def _fanout(kind_words: str, stat: str, value: float) -> str | None:
+    target, _, rest = stat.rpartition("s_")
+    if target in KIND_WORDS and rest:
+        window = HORIZON_WORDS.get(rest, rest)
+        return (
+            f"{kind_words}: seen with about {_count(value)} "
+            f"{KIND_WORDS[target]}s in the last {window}"
+        )
+    if stat.endswith("_unseen") and stat[: -len("_unseen")] in KIND_WORDS:
+        return f"{kind_words}: first time with this {KIND_WORDS[stat[: -len('_unseen')]]}"
+    return None
+
+
+def describe(code: str, value: float) -> str:
+    """Plain-words reason for a reason code and the number it quotes.
+
+    >>> describe("device.accounts", 7.2)
+    'device: used by about 7 accounts recently'
+    >>> describe("ip_net.accounts_1d", 41.0)
+    'IP network: seen with about 41 accounts in the last day'
+    >>> describe("amount.vs_usual", 6.0)
+    "amount: about 6.0x this account's usual spend"
+    """
+    if code in _FIXED:
+        return _FIXED[code]
+    head, _, stat = code.partition(".")
+    if head == "amount":
+        if stat == "vs_usual":
+            return f"amount: about {value:.1f}x this account's usual spend"
+        return f"amount: {value:.2f}"
+    if head == "type":
+        return f"event type: {stat}"
+    if head == "flag":
+        return describe(_flag_code(stat), value)
+    kind_words = KIND_WORDS.get(head)
+    if kind_words is None:
+        return code
+    return _per_stat(kind_words, stat, value) or _fanout(kind_words, stat, value) or code
+
+
+def _flag_code(flag: str) -> str:
+    kind, _, what = flag.partition("_")
+    return f"{kind}.{what}"

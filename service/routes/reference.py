@@ -1,0 +1,154 @@
+"""``POST /v1/reference``: the floor under ``/v1/score`` for the service benchmark (off by default).
+
+It takes the same body (`EventIn`, the same strict parsing), the same API-key check and the same
+budget as ``/v1/score``, then makes one pipelined Redis round trip of the same size and kind as a
+scored event's (`RedisStore.begin`): a claim (SET NX GET PX), and for each identifier the event
+carries, ZRANGE followed by its writes (ZINCRBY per decay sum, ZADD LT, ZADD GT, ZREM, EXPIRE),
+built by the store's own `WritePlanner`. It does no scoring: no normalisation, no hashing with the
+service's secret, no feature reading, no model. Measuring both routes in one run gives the cost
+of scoring against this floor.
+
+The writes go to scratch keys (``ref{...}``, a minute to live), never to real state. Their names
+come from a keyed BLAKE2b of the raw field under a random key drawn once per process, so no raw
+value reaches Redis and the names mean nothing outside the process. Each identifier field counts
+as the kinds it gives when valid (DESIGN.md, "Identifiers"): account 1, device 1, ip 2, phone 2,
+e-mail 2.
+
+The application includes this router when ``EMBERSCORE_REFERENCE_ENDPOINT=true``; it needs the
+Redis store (``runtime.store.fast``, the request-path client, and ``runtime.store.planner``) and
+answers 503 on the embedded store.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import secrets
+from base64 import urlsafe_b64encode
+from typing import Any
+
+from fastapi import APIRouter, HTTPException
+from pydantic import BaseModel
+
+from scoring.config import KIND_LETTERS, ScoringConfig
+from scoring.event import Event, EventPlan
+from scoring.profile import TimeBasis
+from service.api_models import EventIn, Message, ValidationProblems
+from service.routes.deps import ApiKey, Runtime, RuntimeDep, store_unavailable
+from service.stores.base import StoreUnavailable
+from service.stores.redis_client import guard
+
+router = APIRouter(prefix="/v1", tags=["benchmark"], dependencies=[ApiKey])
+
+SCRATCH_TTL_S = 60
+FIELD_KINDS: dict[str, tuple[str, ...]] = {  # in the order `normalise_event` gives keys
+    "account_id": ("account",),
+    "device_id": ("device",),
+    "ip": ("ip", "ip_net"),
+    "phone": ("phone", "phone_prefix"),
+    "email": ("email", "email_domain"),
+}
+_SCRATCH_KEY = secrets.token_bytes(32)
+
+
+class ReferenceOut(BaseModel):
+    """What the reference round trip did (no score: nothing was scored)."""
+
+    event_id: str
+    identifiers: int
+    commands: int
+
+
+def scratch_digest(kind: str, value: str) -> bytes:
+    """8-byte keyed BLAKE2b of a raw value under this process's random key."""
+    data = f"{kind}\x00{value}".encode("utf-8", "surrogatepass")
+    return hashlib.blake2b(data, key=_SCRATCH_KEY, digest_size=8).digest()
+
+
+def scratch_key(kind: str, digest: bytes) -> str:
+    """A scratch key, apart from every key the store uses."""
+    return f"ref{{{KIND_LETTERS[kind]}{urlsafe_b64encode(digest).rstrip(b'=').decode()}}}"
+
+
+def reference_plan(event: Event, config: ScoringConfig) -> EventPlan:
+    """A plan with the real plan's shape (kinds, fan-out hits, amount) without normalising."""
+    identifiers: list[tuple[str, bytes]] = []
+    for name, kinds in FIELD_KINDS.items():
+        value = getattr(event, name)
+        if value and value.strip():
+            identifiers += [(k, scratch_digest(k, value)) for k in kinds if k in config.kinds]
+    m = config.fanout_buckets
+    buckets = {k: (KIND_LETTERS[k], int.from_bytes(d[4:8], "big") % m) for k, d in identifiers}
+    hits = tuple(
+        tuple(buckets[t] for t in config.targets_of(kind) if t in buckets)
+        for kind, _ in identifiers
+    )
+    amount = event.amount if event.amount is not None and event.amount > 0 else None
+    return EventPlan(
+        event,
+        scratch_digest("event", event.event_id),
+        TimeBasis.at(event.ts_s, config),
+        tuple(identifiers),
+        hits,
+        tuple(amount if kind == config.amount_kind else None for kind, _ in identifiers),
+        frozenset(),
+    )
+
+
+def _queue(pipe: Any, plan: EventPlan, writes: list[Any]) -> None:
+    """The commands `RedisStore.begin` sends for a plan, on scratch keys."""
+    claim = "ref{i" + urlsafe_b64encode(plan.event_digest).rstrip(b"=").decode() + "}"
+    pipe.set(claim, b"", nx=True, get=True, px=SCRATCH_TTL_S * 1000)
+    for (kind, digest), write in zip(plan.identifiers, writes, strict=True):
+        key = scratch_key(kind, digest)
+        pipe.zrange(key, 0, -1, withscores=True)
+        for name, value in write.increments.items():
+            pipe.zincrby(key, value, name)
+        if write.lowest:
+            pipe.zadd(key, write.lowest, lt=True)
+        if write.highest:
+            pipe.zadd(key, write.highest, gt=True)
+        if write.stale:
+            pipe.zrem(key, *write.stale)
+        pipe.expire(key, SCRATCH_TTL_S)
+
+
+async def round_trip(client: Any, planner: Any, plan: EventPlan, budget_s: float) -> int:
+    """One pipelined exchange with the commands of ``plan`` on scratch keys; replies received.
+
+    ``client`` is the store's request-path Redis client, ``planner`` its `WritePlanner`.
+    """
+    writes = planner.event(plan)
+    async with guard("the reference round trip", budget_s):
+        pipe = client.pipeline(transaction=False)
+        _queue(pipe, plan, writes)
+        replies = await pipe.execute()
+    return len(replies)
+
+
+async def _answer(runtime: Runtime, plan: EventPlan) -> int:
+    store = runtime.store
+    if getattr(store, "fast", None) is None:
+        raise HTTPException(503, "the reference endpoint needs the Redis store")
+    try:
+        return await round_trip(store.fast, store.planner, plan, runtime.score_budget_s)
+    except StoreUnavailable as exc:
+        runtime.metrics.store_error("reference", exc)
+        raise store_unavailable("reference") from exc
+
+
+@router.post(
+    "/reference",
+    response_model=ReferenceOut,
+    summary="Benchmark floor: parse a score request and make one Redis round trip, no scoring",
+    responses={
+        401: {"model": Message},
+        422: {"model": ValidationProblems},
+        503: {"model": Message, "description": "no Redis store, or Redis unavailable"},
+    },
+)
+async def reference(body: EventIn, runtime: RuntimeDep) -> ReferenceOut:
+    plan = reference_plan(body.to_event(), runtime.config)
+    commands = await _answer(runtime, plan)
+    return ReferenceOut(
+        event_id=body.event_id, identifiers=len(plan.identifiers), commands=commands
+    )
