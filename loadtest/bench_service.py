@@ -1,6 +1,6 @@
 """Benchmark the HTTP service over Redis on this machine and print the figures (nothing asserts).
 
-    .venv/bin/python -m loadtest.bench_service                      # the full run (about 8 min)
+    .venv/bin/python -m loadtest.bench_service                      # the full run: several minutes
     .venv/bin/python -m loadtest.bench_service --duration 10 --step-duration 5   # a quick look
 
 Starts its own ``redis-server`` on a free loopback port and ``emberscore serve`` with two workers
@@ -10,7 +10,8 @@ against it (a fresh hashing secret, the reference endpoint on), warms up, then:
    (default 60) and prints the achieved rate, latency percentiles and errors;
 2. finds the saturation throughput of ``/v1/score`` and of ``/v1/reference`` (the same body and
    one Redis round trip of the same size, no scoring): the offered rate goes up by
-   ``--step-factor`` per step, then is refined by bisection, and the highest rate *sustained*
+   ``--step-factor`` per step from ``--start-rate`` (down, if that first step already fails)
+   until a step fails, then is refined by bisection, and the highest rate *sustained*
    is reported: no errors (a score without state counts as one), at least 97% of it achieved,
    p99 at most ``--p99-bound-ms`` (default 50, the default scoring budget), and the client using
    less than 90% of a core. Both, and their ratio, are printed.
@@ -25,22 +26,21 @@ from __future__ import annotations
 import argparse
 import os
 import secrets
-import shutil
-import signal
-import socket
-import subprocess
 import sys
 import tempfile
 import time
-import urllib.error
-import urllib.request
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
 
 if __package__ in (None, ""):  # run as a script (python loadtest/bench_service.py)
     sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
+from loadtest.bench_processes import (
+    BenchError,
+    RedisProcess,
+    ServiceProcess,
+    load_average,
+)
 from loadtest.load import (
     CPU_WARN_SHARE,
     LoadConfig,
@@ -53,185 +53,9 @@ from loadtest.load import (
 )
 from loadtest.load_http import body_prefixes, scenario_events
 
-READY_TIMEOUT_S = 60.0
 ACHIEVED_SHARE = 0.97
-CLK_TCK = os.sysconf("SC_CLK_TCK")
-
-
-class BenchError(Exception):
-    """The benchmark could not set itself up (printed without a traceback)."""
-
-
-def _load() -> str:
-    """The 1-minute load average: other work on the machine skews every figure."""
-    return f"{os.getloadavg()[0]:.1f}"
-
-
-def free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return int(s.getsockname()[1])
-
-
-def _stop(process: subprocess.Popen[bytes], group: bool) -> None:
-    """Stop a child this script started: SIGTERM to its pid, then SIGKILL (its own group)."""
-    if process.poll() is not None:
-        return
-    process.send_signal(signal.SIGTERM)
-    try:
-        process.wait(timeout=20)
-    except subprocess.TimeoutExpired:
-        if group:  # the service's session was created by this script for its workers
-            os.killpg(process.pid, signal.SIGKILL)
-        else:
-            process.kill()
-        process.wait(timeout=10)
-
-
-class RedisProcess:
-    """A redis-server of our own on a free port, no persistence, stopped by its pid."""
-
-    def __init__(self, folder: Path) -> None:
-        binary = shutil.which("redis-server")
-        if binary is None:
-            raise BenchError(
-                "redis-server not found on PATH (Debian: apt-get install redis-server)"
-            )
-        self.port = free_port()
-        self.url = f"redis://127.0.0.1:{self.port}/0"
-        args = [
-            binary, "--port", str(self.port), "--bind", "127.0.0.1", "--save", "",
-            "--appendonly", "no", "--dir", str(folder), "--logfile", str(folder / "redis.log"),
-        ]  # fmt: skip
-        self.process = subprocess.Popen(args, stdout=subprocess.DEVNULL)
-
-    def client(self) -> Any:
-        import redis
-
-        return redis.Redis(port=self.port, socket_timeout=5.0)
-
-    def wait_ready(self) -> str:
-        import redis
-
-        deadline = time.monotonic() + READY_TIMEOUT_S
-        while time.monotonic() < deadline:
-            if self.process.poll() is not None:
-                raise BenchError("redis-server exited at start (see its log)")
-            try:
-                with self.client() as c:
-                    return str(c.info("server")["redis_version"])
-            except redis.ConnectionError:
-                time.sleep(0.05)
-        raise BenchError("redis-server did not answer PING")
-
-    def cpu_s(self) -> float:
-        with self.client() as c:
-            info = c.info("cpu")
-        return float(info["used_cpu_sys"]) + float(info["used_cpu_user"])
-
-    def stop(self) -> None:
-        _stop(self.process, group=False)
-
-
-class ServiceProcess:
-    """``emberscore serve`` (or ``--factory``) on a free port, output to a log file."""
-
-    def __init__(self, redis_url: str, folder: Path, workers: int, factory: str | None) -> None:
-        self.port = free_port()
-        self.base = f"http://127.0.0.1:{self.port}"
-        self.log_path = folder / "service.log"
-        env = {k: v for k, v in os.environ.items() if not k.startswith("EMBERSCORE_")}
-        env.update(
-            EMBERSCORE_MODE="development",
-            EMBERSCORE_REDIS_URL=redis_url,
-            EMBERSCORE_HASH_SECRET=secrets.token_hex(32),  # fresh: nothing links to other runs
-            EMBERSCORE_REFERENCE_ENDPOINT="true",
-            EMBERSCORE_METRICS_DIR=str(folder / "metrics"),
-        )
-        with self.log_path.open("wb") as log:
-            self.process = subprocess.Popen(
-                self._command(workers, factory), env=env, stdout=log, stderr=subprocess.STDOUT,
-                start_new_session=True,
-            )  # fmt: skip
-
-    def _command(self, workers: int, factory: str | None) -> list[str]:
-        host, port = "127.0.0.1", str(self.port)
-        if factory is None:
-            exe = Path(sys.executable).with_name("emberscore")
-            cmd = [str(exe)] if exe.exists() else [sys.executable, "-m", "service.cli"]
-            return [*cmd, "serve", "--host", host, "--port", port, "--workers", str(workers)]
-        code = (
-            "import sys, uvicorn; from service.workers.serve import server_options, "
-            "prepare_metrics_dir; from service.config import Settings; "
-            "prepare_metrics_dir(Settings(), int(sys.argv[3])); "
-            "uvicorn.run(sys.argv[4], **server_options(sys.argv[1], int(sys.argv[2]), "
-            "int(sys.argv[3])))"
-        )
-        return [sys.executable, "-c", code, host, port, str(workers), factory]
-
-    def get(self, path: str) -> tuple[int, str]:
-        try:
-            with urllib.request.urlopen(self.base + path, timeout=5) as answer:
-                return answer.status, answer.read().decode()
-        except urllib.error.HTTPError as exc:
-            return exc.code, exc.read().decode()
-
-    def post(self, path: str, body: bytes) -> tuple[int, str]:
-        request = urllib.request.Request(
-            self.base + path, data=body, headers={"Content-Type": "application/json"}
-        )
-        try:
-            with urllib.request.urlopen(request, timeout=5) as answer:
-                return answer.status, answer.read().decode()
-        except urllib.error.HTTPError as exc:
-            return exc.code, exc.read().decode()
-
-    def wait_ready(self) -> str:
-        deadline = time.monotonic() + READY_TIMEOUT_S
-        while time.monotonic() < deadline:
-            if self.process.poll() is not None:
-                raise BenchError(f"the service exited at start:\n{self.log_tail()}")
-            try:
-                status, text = self.get("/readyz")
-                if status == 200:
-                    return text
-            except (urllib.error.URLError, ConnectionError, TimeoutError):
-                pass
-            time.sleep(0.2)
-        raise BenchError(f"the service was not ready within {READY_TIMEOUT_S:.0f} s")
-
-    def log_tail(self, lines: int = 15) -> str:
-        return "\n".join(self.log_path.read_text(errors="replace").splitlines()[-lines:])
-
-    def cpu_s(self) -> dict[int, float]:
-        """CPU seconds (user + system) of the service and of every process under it, by pid."""
-        return {pid: _proc_cpu_s(pid) for pid in _descendants(self.process.pid)}
-
-    def stop(self) -> None:
-        _stop(self.process, group=True)
-
-
-def _descendants(root: int) -> list[int]:
-    parents: dict[int, int] = {}
-    for stat in Path("/proc").glob("[0-9]*/stat"):
-        try:
-            fields = stat.read_text().rsplit(")", 1)[1].split()
-        except OSError:
-            continue
-        parents[int(stat.parent.name)] = int(fields[1])
-    out, frontier = [root], [root]
-    while frontier:
-        frontier = [pid for pid, parent in parents.items() if parent in frontier]
-        out += frontier
-    return out
-
-
-def _proc_cpu_s(pid: int) -> float:
-    try:
-        fields = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()
-    except OSError:
-        return 0.0
-    return (int(fields[11]) + int(fields[12])) / CLK_TCK  # utime, stime (proc(5))
+MIN_RATE = 10.0  # the search gives up below this rate
+QUIET_CPU_S = 0.1  # CPU seconds in one second of wall time: the service counts as idle
 
 
 @dataclass(frozen=True)
@@ -303,8 +127,20 @@ class Bench:
         used = sorted((t - service0.get(pid, 0.0) for pid, t in service1.items()), reverse=True)
         return Measured(report, tuple(used), redis1 - redis0, judge(report, self.args.p99_bound_ms))
 
+    def wait_quiet(self) -> None:
+        """Wait until the service and Redis have worked off what earlier runs queued (their
+        write-behind queues, requests still in their loops): under 10% of a core for a second."""
+        time.sleep(self.args.settle)
+        deadline = time.monotonic() + self.args.quiet_timeout
+        while time.monotonic() < deadline:
+            before = sum(self.service.cpu_s().values()) + self.redis.cpu_s()
+            time.sleep(1.0)
+            if sum(self.service.cpu_s().values()) + self.redis.cpu_s() - before < QUIET_CPU_S:
+                return
+        print(f"  (the service was still busy after {self.args.quiet_timeout:g} s; going on)")
+
     def step(self, path: str, rate: float) -> Measured:
-        time.sleep(self.args.settle)  # let queues of the previous step drain
+        self.wait_quiet()
         m = self.run(path, rate, self.args.step_duration)
         r = m.report
         print(
@@ -312,7 +148,7 @@ class Bench:
             f"p50 {r.latency.p50_ms:7.2f}  p99 {r.latency.p99_ms:8.2f}  "
             f"p99.9 {r.latency.p999_ms:8.2f} ms  errors {r.error_count:,}  "
             f"late {r.late_sends:,}  client CPU {100 * r.client_cpu_share:3.0f}%  "
-            f"load {_load()}  -> {m.verdict}",
+            f"load {load_average()}  -> {m.verdict}",
             flush=True,
         )
         return m
@@ -322,19 +158,31 @@ class Bench:
         return self.service.post(path, body + f"{time.time():.3f}}}".encode())
 
 
-def saturate(bench: Bench, path: str) -> tuple[Measured | None, Measured | None]:
-    """Highest sustained step and first step not sustained (geometric steps, then bisection)."""
+def _bracket(bench: Bench, path: str) -> tuple[Measured | None, Measured | None]:
+    """Geometric steps up from ``--start-rate`` until one fails (or down, if the first fails)."""
     args = bench.args
-    best: Measured | None = None
-    worst: Measured | None = None
-    rate = args.start_rate
-    while rate <= args.max_rate:
+    first = bench.step(path, args.start_rate)
+    if first.sustained:
+        best, rate = first, args.start_rate * args.step_factor
+        while rate <= args.max_rate:
+            m = bench.step(path, rate)
+            if not m.sustained:
+                return best, m
+            best, rate = m, rate * args.step_factor
+        return best, None
+    worst, rate = first, args.start_rate / args.step_factor
+    while rate >= MIN_RATE:
         m = bench.step(path, rate)
-        if not m.sustained:
-            worst = m
-            break
-        best, rate = m, rate * args.step_factor
-    for _ in range(args.refine):
+        if m.sustained:
+            return m, worst
+        worst, rate = m, rate / args.step_factor
+    return None, worst
+
+
+def saturate(bench: Bench, path: str) -> tuple[Measured | None, Measured | None]:
+    """Highest sustained step and lowest step not sustained (bracketing, then bisection)."""
+    best, worst = _bracket(bench, path)
+    for _ in range(bench.args.refine):
         if best is None or worst is None or worst.verdict == CLIENT_BOUND:
             break
         low, high = best.report.offered_rate_per_s, worst.report.offered_rate_per_s
@@ -361,12 +209,18 @@ def _summary_line(path: str, best: Measured | None, worst: Measured | None) -> s
 def phase_steady(bench: Bench) -> None:
     args = bench.args
     print(f"\n== 1. /v1/score at {args.rate:,.0f} requests/s for {args.duration:g} s", flush=True)
+    bench.wait_quiet()
     m = bench.run("/v1/score", args.rate, args.duration)
     print(format_report(m.report))
     print(f"server side       {m.per_request()}")
     split = ", ".join(f"{t:.1f}" for t in m.process_cpu_s if t >= 0.05)
-    print(f"service processes CPU seconds, busiest first: {split} (uneven = unbalanced workers)")
-    print(f"load average      {_load()} (1 minute; {os.cpu_count()} CPUs)")
+    print(f"service processes CPU seconds, busiest first: {split}")
+    print(f"load average      {load_average()} (1 minute; {os.cpu_count()} CPUs)")
+    if args.workers > 1 and m.process_cpu_s and m.process_cpu_s[0] > 0.75 * m.service_cpu_s:
+        print(
+            "WARNING: one service process did most of the work: the workers share one listening "
+            "socket and the client's keep-alive connections landed mostly on one of them."
+        )
 
 
 def phase_saturation(bench: Bench, reference: bool) -> None:
@@ -424,7 +278,7 @@ def describe_machine(redis_version: str, args: argparse.Namespace) -> None:
         f"{redis_version}; service: {args.workers} workers"
         + (f" ({args.factory})" if args.factory else " (emberscore serve)")
         + f"; client: 1 process, {args.connections} keep-alive connections; "
-        f"load average {_load()} before the run"
+        f"load average {load_average()} before the run"
     )
 
 
@@ -442,6 +296,7 @@ def _args(argv: list[str] | None) -> argparse.Namespace:
     add("--max-rate", type=float, default=50_000.0, help="stop the search here")
     add("--p99-bound-ms", type=float, default=50.0, help="p99 bound of a sustained step (50)")
     add("--settle", type=float, default=2.0, help="pause before each step, seconds (2)")
+    add("--quiet-timeout", type=float, default=120.0, help="longest wait for an idle service")
     add("--skip-saturation", action="store_true", help="phase 1 only")
     add("--connections", type=int, default=64, help="client keep-alive connections (64)")
     add("--drain", type=float, default=10.0, help="seconds to wait for answers after a run")

@@ -44,6 +44,12 @@ from loadtest.load_http import (
     request_head,
     scenario_events,
 )
+from loadtest.load_schedule import (
+    LatencySummary,
+    intended_offset_s,
+    percentile,
+    request_count,
+)
 
 __all__ = [
     "CPU_WARN_SHARE",
@@ -64,82 +70,12 @@ __all__ = [
 
 T = TypeVar("T")
 START_DELAY_S = 0.05  # the first intended send, after the pool is open
+POOL_STAGGER_S = 0.002  # between connections of the pool (see `_open_pool`)
 NOT_SENT = "not sent before the drain timeout"
 NO_ANSWER = "no answer before the drain timeout"
 CPU_WARN_SHARE = 0.9  # of one core: the client's event loop runs on one core
 DEGRADED_MARKER = b'"state_available":false'
 """In a 2xx answer, marks a score given without state (fail open): counted as an error."""
-
-
-def request_count(duration_s: float, rate_per_s: float) -> int:
-    """Requests scheduled in ``duration_s`` at ``rate_per_s``: those intended before the end.
-
-    >>> request_count(2.0, 40.0), request_count(0.3, 10.0), request_count(1.0, 2.5)
-    (80, 3, 3)
-    """
-    # The tolerance keeps 0.3 s x 10/s at 3 despite binary rounding (3.0000000000000004).
-    return max(0, math.ceil(duration_s * rate_per_s - 1e-9))
-
-
-def intended_offset_s(i: int, rate_per_s: float) -> float:
-    """Intended send time of request ``i``, in seconds after the start: ``i / rate``.
-
-    Computed from ``i`` each time, never by adding intervals, so no rounding error accumulates.
-
-    >>> intended_offset_s(0, 1000.0), intended_offset_s(1500, 1000.0)
-    (0.0, 1.5)
-    """
-    return i / rate_per_s
-
-
-def percentile(sorted_values: list[float], q: float) -> float:
-    """The ``q``-th percentile (0 to 100) of ascending values, by linear interpolation.
-
-    The position ``(n - 1) * q / 100`` between ranks, as numpy's default method "linear"
-    (definition 7 of Hyndman and Fan, 1996). NaN for no values.
-
-    >>> percentile([10.0, 20.0, 30.0, 40.0], 50.0)
-    25.0
-    """
-    if not sorted_values:
-        return math.nan
-    if not 0.0 <= q <= 100.0:
-        raise ValueError(f"percentile must be from 0 to 100, got {q}")
-    position = (len(sorted_values) - 1) * (q / 100.0)
-    lo = math.floor(position)
-    hi = min(lo + 1, len(sorted_values) - 1)
-    a, b, t = sorted_values[lo], sorted_values[hi], position - lo
-    # Interpolate from the nearer end, as numpy does, so that t = 1 gives b exactly.
-    return a + (b - a) * t if t < 0.5 else b - (b - a) * (1.0 - t)
-
-
-@dataclass(frozen=True)
-class LatencySummary:
-    """Percentiles and maximum of a set of latencies, in milliseconds (exact sort)."""
-
-    count: int
-    p50_ms: float
-    p95_ms: float
-    p99_ms: float
-    p999_ms: float
-    max_ms: float
-
-    @classmethod
-    def of(cls, samples_s: list[float]) -> LatencySummary:
-        """Summarise latencies given in seconds.
-
-        >>> LatencySummary.of([0.001, 0.002, 0.003]).p50_ms
-        2.0
-        """
-        ms = sorted(s * 1000.0 for s in samples_s)
-        p50, p95, p99, p999 = (percentile(ms, q) for q in (50.0, 95.0, 99.0, 99.9))
-        return cls(len(ms), p50, p95, p99, p999, ms[-1] if ms else math.nan)
-
-    def line(self) -> str:
-        return (
-            f"p50 {self.p50_ms:8.2f}   p95 {self.p95_ms:8.2f}   p99 {self.p99_ms:8.2f}   "
-            f"p99.9 {self.p999_ms:8.2f}   max {self.max_ms:8.2f}"
-        )
 
 
 @dataclass(frozen=True)
@@ -230,6 +166,7 @@ class _Run:
     latencies: list[float] = field(default_factory=list)
     service: list[float] = field(default_factory=list)
     errors: Counter[str] = field(default_factory=Counter)
+    opened: list[Connection] = field(default_factory=list)
 
     async def worker(self, conn: Connection | None) -> None:
         """Take the next request, wait for its intended time, send it; until none are left."""
@@ -242,7 +179,9 @@ class _Run:
             intended = self.start + intended_offset_s(i, rate)
             delay = intended - clock()
             if delay > 0:
-                await asyncio.sleep(delay)
+                while delay > 0:  # a timer may fire a fraction of a millisecond early
+                    await asyncio.sleep(delay)
+                    delay = intended - clock()
                 lag = clock() - intended
                 self.max_lag_s = max(self.max_lag_s, lag)
                 self.late_sends += lag > late_s
@@ -258,6 +197,7 @@ class _Run:
         try:
             if conn is None or conn.closed:
                 conn = await Connection.open(self.target)
+                self.opened.append(conn)
             status, body = await conn.exchange(data)
         except (OSError, EOFError, ProtocolError, ValueError) as exc:
             self.errors[type(exc).__name__] += 1
@@ -280,10 +220,22 @@ class _Run:
 
 
 async def _open_pool(target: Target, size: int) -> list[Connection]:
+    """Open the pool one connection at a time, a little apart, as a proxy's pool fills.
+
+    Opened all at once, the connections tend to land on one of the server's worker processes
+    (they share one listening socket and the first to wake accepts the burst), and a run would
+    then measure one worker instead of all of them.
+    """
+    pool: list[Connection] = []
     try:
-        return list(await asyncio.gather(*(Connection.open(target) for _ in range(size))))
+        for _ in range(size):
+            pool.append(await Connection.open(target))
+            await asyncio.sleep(POOL_STAGGER_S)
     except OSError as exc:
+        for conn in pool:
+            conn.close()
         raise LoadError(f"cannot connect to {target.url}: {exc.strerror or exc}") from exc
+    return pool
 
 
 async def run_load(config: LoadConfig, prefixes: list[bytes]) -> LoadReport:
@@ -294,6 +246,7 @@ async def run_load(config: LoadConfig, prefixes: list[bytes]) -> LoadReport:
         raise LoadError(f"{n} requests scheduled but only {len(prefixes)} bodies prepared")
     run = _Run(config, target, prefixes, n, head=request_head(target, config.api_key))
     pool = await _open_pool(target, min(config.connections, max(n, 1)))
+    run.opened += pool
     cpu_start = time.thread_time()
     run.start = time.perf_counter() + START_DELAY_S
     run.wall_start = time.time() + START_DELAY_S
@@ -304,7 +257,7 @@ async def run_load(config: LoadConfig, prefixes: list[bytes]) -> LoadReport:
         task.cancel()
     await asyncio.gather(*pending, return_exceptions=True)
     end = time.perf_counter()
-    for conn in pool:
+    for conn in run.opened:
         conn.close()
     return _report(run, time.thread_time() - cpu_start, end)
 

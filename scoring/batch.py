@@ -29,11 +29,11 @@ from scoring.fusion import (
     _group,
     blend_of,
     inverse_std,
-    sigmoid,
+    sigmoid_array,
 )
 from scoring.logrecord import RecordCodec
 from scoring.profile import TimeBasis, _add
-from scoring.reasons import describe
+from scoring.reasons import _describe
 
 
 @dataclass
@@ -162,7 +162,11 @@ def _read_snapshots(
     rows, at = rows[hit], sort[at[hit]]
     epoch = np.floor(cols.ts_s[rows] / (EPOCH_HALF_LIVES * config.label_half_life_s))
     epoch = epoch.astype(np.int64)
-    factor = np.power(2.0, (cols.ts_s[rows] - epoch * EPOCH_HALF_LIVES * config.label_half_life_s) / config.label_half_life_s)
+    factor = np.power(
+        2.0,
+        (cols.ts_s[rows] - epoch * EPOCH_HALF_LIVES * config.label_half_life_s)
+        / config.label_half_life_s,
+    )
     total = np.zeros(len(rows))
     width = max(len(e) for e in snap_entries)
     for k in range(width):
@@ -174,7 +178,9 @@ def _read_snapshots(
         near = has & (shift != 0) & (shift < 1024)
         with np.errstate(over="ignore"):
             total = np.where(same, total + v_k / factor, total)
-            total = np.where(near, total + v_k / factor * np.power(2.0, -shift.astype(float)), total)
+            total = np.where(
+                near, total + v_k / factor * np.power(2.0, -shift.astype(float)), total
+            )
     out[rows] = total
     return out
 
@@ -321,6 +327,19 @@ class _ReasonTable:
         self.rank = np.array([rank[m] for m in self.members])
         self.n_features = len(names)
         self.binary = np.array([s == "binary" for s in fusion.layout.scales])
+        self.display_scale = np.array([100.0 if m == "amount.log" else 10.0 for m in self.members])
+        # how a feature's value is quoted (`fusion._shown`): 0 as is, 1 exp, 2 expm1
+        self.shown_kind = np.array(
+            [
+                0
+                if n.endswith(".bad") or n.startswith("flag.")
+                else 1
+                if n == "amount.vs_usual"
+                else 2
+                for n in names
+            ]
+            + [0] * len(codes)
+        )
 
 
 def score_rows(
@@ -342,7 +361,12 @@ def score_rows(
         stop = min(start + chunk, n)
         r, text = _score_chunk(x[start:stop], version_of[start:stop], params, fusion, table)
         risk[start:stop] = r
-        decisions.extend(fusion.decide(float(v)) for v in r)
+        cfg = fusion.config
+        decisions.extend(
+            np.where(
+                r >= cfg.deny_at, "deny", np.where(r >= cfg.review_at, "review", "allow")
+            ).tolist()
+        )
         reasons.extend(text)
         if progress is not None:
             progress(stop)
@@ -371,62 +395,62 @@ def _score_chunk(
     points = points_by_code.sum(axis=1)
     prior_logit = fusion.config.base_logit + points
     a = params["blend"][version]
-    inputs = np.column_stack([x, points])
-    contributions = (inputs - params["means"][version]) * params["scale"][version]
+    nf = x.shape[1]
+    means, scale = params["means"][version], params["scale"][version]
+    contributions = (x - means[:, :nf]) * scale[:, :nf]
+    prior_term = (points - means[:, nf]) * scale[:, nf]
     model_logit = (
         contributions.sum(axis=1)
+        + prior_term
         + params["intercept"][version]
         + np.log(fusion.config.negative_sample_rate)
     )
     logit = np.where(a > 0.0, (1.0 - a) * prior_logit + a * model_logit, prior_logit)
-    risk = np.array([sigmoid(float(z)) for z in logit])
+    risk = sigmoid_array(logit)
     prior_weight = np.where(a > 0.0, (1.0 - a) + a * params["slope"][version], 1.0)
-    weights = np.zeros((x.shape[0], len(table.members)))
-    nf = table.n_features
-    model_w = a[:, None] * contributions[:, :nf]
-    offered = (
-        (a[:, None] > 0.0)
-        & (model_w > REASON_FLOOR)
+    model_w = a[:, None] * contributions
+    model_on = (
+        (model_w > REASON_FLOOR)
         & params["eligible"][version]
         & ~(table.binary[None, :] & (x == 0.0))
     )
-    weights[:, :nf] = np.where(offered, model_w, np.nan)
     prior_w = points_by_code * prior_weight[:, None]
-    weights[:, nf:] = np.where(points_by_code > 0.0, prior_w, np.nan)
-    values = np.column_stack([_shown_matrix(fusion, x), values_by_code])
-    return risk, _pick_reasons(weights, values, table, fusion.config.reasons)
+    members = _MemberView(model_w, model_on, prior_w, points_by_code > 0.0)
+    picks = _pick_reasons(members, table, fusion.config.reasons)
+    return risk, _reason_texts(picks, x, values_by_code, table)
 
 
-def _shown_matrix(fusion: Fusion, x: np.ndarray) -> np.ndarray:
-    out = np.empty_like(x)
-    for j, name in enumerate(fusion.layout.names):
-        if name.endswith(".bad") or name.startswith("flag."):
-            out[:, j] = x[:, j]
-        elif name == "amount.vs_usual":
-            out[:, j] = np.exp(x[:, j])
-        else:
-            out[:, j] = np.expm1(x[:, j])
-    return out
+@dataclass
+class _MemberView:
+    """Weights of reason members (model features, then prior codes) and which are offered."""
+
+    model_w: np.ndarray
+    model_on: np.ndarray
+    prior_w: np.ndarray
+    prior_on: np.ndarray
+
+    def member(self, m: int) -> tuple[np.ndarray, np.ndarray]:
+        nf = self.model_w.shape[1]
+        if m < nf:
+            return self.model_w[:, m], self.model_on[:, m]
+        return self.prior_w[:, m - nf], self.prior_on[:, m - nf]
 
 
 def _pick_reasons(
-    weights: np.ndarray, values: np.ndarray, table: _ReasonTable, k: int
-) -> list[str]:
-    """`fusion.choose_reasons`, row-wise: NaN weights are members not offered."""
-    n = weights.shape[0]
-    w_t = np.ascontiguousarray(weights.T)
-    v_t = np.ascontiguousarray(values.T)
+    members: _MemberView, table: _ReasonTable, k: int
+) -> list[tuple[np.ndarray, np.ndarray]]:
+    """`fusion.choose_reasons`, row-wise: per pick, whether it exists and its member."""
+    n = members.model_w.shape[0]
     ranked = np.full((len(table.groups), n), -np.inf)
     best = np.full((len(table.groups), n), -1, dtype=np.int64)
     rank = table.rank
-    for g, members in enumerate(table.members_of):
+    for g, group_members in enumerate(table.members_of):
         total = np.zeros(n)
         best_w = np.full(n, -np.inf)
         best_m = np.full(n, -1, dtype=np.int64)
         seen = np.zeros(n, dtype=bool)
-        for m in members:
-            w = w_t[m]
-            on = ~np.isnan(w)
+        for m in group_members.tolist():
+            w, on = members.member(m)
             if not on.any():
                 continue
             total = total + np.where(on, w, 0.0)
@@ -438,23 +462,47 @@ def _pick_reasons(
         ranked[g] = np.where(seen, total, -np.inf)
         best[g] = best_m
     rows = np.arange(n)
-    chosen: list[tuple[np.ndarray, np.ndarray, np.ndarray]] = []
+    picks = []
     for _ in range(k):
         col = np.argmax(ranked, axis=0)
         ok = ranked[col, rows] > REASON_FLOOR
-        member = best[col, rows]
-        chosen.append((ok, member, v_t[np.maximum(member, 0), rows]))
+        picks.append((ok, best[col, rows]))
         ranked[col, rows] = -np.inf
-    names = table.members
-    texts = [""] * n
-    for i in np.flatnonzero(chosen[0][0]).tolist():
-        parts = []
-        for ok, member, value in chosen:
-            if not ok[i]:
-                break
-            parts.append(describe(names[member[i]], float(value[i])))
-        texts[i] = "; ".join(parts)
-    return texts
+    return picks
+
+
+def _reason_texts(
+    picks: list[tuple[np.ndarray, np.ndarray]],
+    x: np.ndarray,
+    prior_values: np.ndarray,
+    table: _ReasonTable,
+) -> list[str]:
+    """Plain words of the picked reasons; each quotes its member's number (see `_shown`).
+
+    Words are made once per distinct (member, shown number) and then looked up, so the cost
+    per event is a join of a few strings.
+    """
+    n, nf = x.shape
+    rows = np.arange(n)
+    words: list[list[str]] = []
+    for ok, member in picks:
+        m = np.maximum(member, 0)
+        raw = x[rows, np.minimum(m, nf - 1)]
+        kind = table.shown_kind[m]
+        with np.errstate(over="ignore", invalid="ignore"):
+            shown = np.where(kind == 0, raw, np.where(kind == 1, np.exp(raw), np.expm1(raw)))
+            value = np.where(m < nf, shown, prior_values[rows, np.maximum(m - nf, 0)])
+            rounded = np.floor(value * table.display_scale[m] + 0.5) / table.display_scale[m]
+        column = np.full(n, "", dtype=object)
+        for mem in np.unique(m[ok]).tolist():
+            at = np.flatnonzero(ok & (m == mem))
+            distinct, inverse = np.unique(rounded[at], return_inverse=True)
+            texts = np.array(
+                [_describe(table.members[mem], v) for v in distinct.tolist()], dtype=object
+            )
+            column[at] = texts[inverse]
+        words.append(column.tolist())
+    return ["; ".join(p for p in parts if p) for parts in zip(*words, strict=True)]
 
 
 def replay_columns(

@@ -23,8 +23,8 @@ import numpy as np
 from scoring.batch_plan import PlannedColumns
 from scoring.config import ScoringConfig
 from scoring.decay import EPOCH_HALF_LIVES
-from scoring.features import EVENT_TYPES, FLAGS, FeatureLayout, horizon_label
 from scoring.fanout import linear_count
+from scoring.features import EVENT_TYPES, FLAGS, FeatureLayout, horizon_label
 
 
 @dataclass
@@ -141,40 +141,68 @@ def _kind_counts(
     return counts, spent, has_spent
 
 
+def recent_ends(index: KindIndex, ts_s: np.ndarray, windows_s: Sequence[float]) -> list[np.ndarray]:
+    """Per window, per position: the last position of its segment still within the window.
+
+    For a hit at position p (whole second ``s``), later positions q of the segment see it as
+    recent while ``t_q < s + window`` (the sketch's rule: ``s > t_q - window``). Rows are sorted
+    by time, so ``t_q < v`` holds exactly when q's row is below the number of rows with a time
+    below v; and (segment, row) keys are sorted along the index, as are the limits, so each
+    window costs one merge-like search and every comparison is exact.
+    """
+    n_rows = len(ts_s)
+    keys = index.segment * (n_rows + 1) + index.order
+    out = []
+    for window in windows_s:
+        rows_below = np.searchsorted(ts_s, np.floor(ts_s) + window, side="left")
+        limits = index.segment * (n_rows + 1) + rows_below[index.order]
+        out.append(np.searchsorted(keys, limits, side="left") - 1)
+    return out
+
+
+def _covered(
+    hit_pos: np.ndarray, next_hit: np.ndarray, recent_end: np.ndarray, n: int
+) -> np.ndarray:
+    """Per position: how many hits cover it (a hit covers the positions after it, up to the
+    next hit of its bucket and while it is recent), counted with a difference array."""
+    diff = np.zeros(n + 1, dtype=np.int64)
+    end = np.minimum(next_hit, recent_end[hit_pos])
+    start = hit_pos + 1
+    valid = start <= end
+    np.add.at(diff, start[valid], 1)
+    np.add.at(diff, end[valid] + 1, -1)
+    return np.cumsum(diff[:-1])
+
+
 def _fanout_occupancy(
     index: KindIndex,
     target_buckets: np.ndarray,
     ts_s: np.ndarray,
-    windows_s: tuple[float, float],
-    buckets: int,
+    ends: Sequence[np.ndarray],
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Occupied buckets in both windows, and whether the target's own bucket was hit (long)."""
+    """Occupied buckets in both windows, and when the target's own bucket was last hit (-1)."""
     order = index.order
-    t = ts_s[order]
-    t_int = np.floor(t).astype(np.int64)
+    n = len(order)
+    t_int = np.floor(ts_s[order])
     tb = target_buckets[order]
-    seg = index.segment
-    big = np.int64(1) << np.int64(32)  # whole seconds stay below 2**32 until 2106
-    occ_short = np.zeros(len(order), dtype=np.int64)
-    occ_long = np.zeros(len(order), dtype=np.int64)
-    own_last = np.full(len(order), -1, dtype=np.int64)
-    base = seg * big
-    short_since, long_since = t - windows_s[0], t - windows_s[1]
-    for b in range(buckets):
-        hit = tb == b
-        if not hit.any():
-            continue
-        stamp = np.where(hit, base + t_int, -1)
-        running = np.maximum.accumulate(stamp)
-        before = np.empty_like(running)
-        before[0] = -1
-        before[1:] = running[:-1]
-        last = np.where(before >= base, before - base, -1)
-        valid = last >= 0
-        occ_long += valid & (last > long_since)
-        occ_short += valid & (last > short_since)
-        own_last = np.where(tb == b, last, own_last)
-    return occ_short, occ_long, own_last
+    own_last = np.full(n, -1.0)
+    hits = np.flatnonzero(tb >= 0)
+    if n == 0 or len(hits) == 0:
+        return np.zeros(n, dtype=np.int64), np.zeros(n, dtype=np.int64), own_last
+    starts = np.flatnonzero(index.starts)
+    seg_last = np.repeat(np.append(starts[1:], n) - 1, np.diff(np.append(starts, n)))
+    key = index.segment[hits] * (int(tb.max()) + 1) + tb[hits]
+    by_key = np.lexsort((hits, key))
+    hit_pos, seg_bucket = hits[by_key], key[by_key]
+    same_next = np.zeros(len(hit_pos), dtype=bool)
+    same_next[:-1] = seg_bucket[1:] == seg_bucket[:-1]
+    next_hit = np.where(same_next, np.roll(hit_pos, -1), seg_last[hit_pos])
+    short, long_ = (_covered(hit_pos, next_hit, end, n) for end in ends)
+    same_prev = np.zeros(len(hit_pos), dtype=bool)
+    same_prev[1:] = same_next[:-1]
+    prev = np.where(same_prev, np.roll(hit_pos, 1), -1)
+    own_last[hit_pos] = np.where(prev >= 0, t_int[np.maximum(prev, 0)], -1.0)
+    return short, long_, own_last
 
 
 class BatchFeatureReader:
@@ -196,7 +224,8 @@ class BatchFeatureReader:
     ) -> np.ndarray:
         """Features of every event; ``bad[kind]`` is the label-sum read per event (NaN: none)."""
         n = len(cols)
-        x = np.zeros((n, len(self.layout.names)))
+        self._ends: dict[str, list[np.ndarray]] = {}
+        x = np.zeros((n, len(self.layout.names)), order="F")  # filled column by column
         exposure: dict[str, np.ndarray] = {}
         spend: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None
         for kind in self.config.kinds:
@@ -260,12 +289,11 @@ class BatchFeatureReader:
         self, x: np.ndarray, kind: str, target: str, index: KindIndex, cols: PlannedColumns
     ) -> None:
         short, long_ = (horizon_label(w) for w in self.config.fanout_windows_s)
+        ends = self._ends.get(kind)
+        if ends is None:
+            ends = self._ends[kind] = recent_ends(index, cols.ts_s, self.config.fanout_windows_s)
         occ_short, occ_long, own_last = _fanout_occupancy(
-            index,
-            cols.buckets[target],
-            cols.ts_s,
-            self.config.fanout_windows_s,
-            self.config.fanout_buckets,
+            index, cols.buckets[target], cols.ts_s, ends
         )
         order, seen = index.order, ~index.starts
         rows = order[seen]
@@ -273,7 +301,11 @@ class BatchFeatureReader:
         x[rows, self._col[f"{kind}.{target}s_{long_}"]] = self._log_counts[occ_long[seen]]
         t = cols.ts_s[order]
         target_present = cols.ids[target][order] >= 0
-        unseen = seen & target_present & ((own_last < 0) | (own_last <= t - self.config.fanout_windows_s[1]))
+        unseen = (
+            seen
+            & target_present
+            & ((own_last < 0) | (own_last <= t - self.config.fanout_windows_s[1]))
+        )
         x[order[unseen], self._col[f"{kind}.{target}_unseen"]] = 1.0
 
     def _event_columns(
@@ -293,13 +325,7 @@ class BatchFeatureReader:
             index = indexes[self.config.amount_kind]
             order = index.order
             a = amount[order]
-            ok = (
-                paid[order]
-                & ~index.starts
-                & has_spent
-                & (events > 0.0)
-                & (spent > 0.0)
-            )
+            ok = paid[order] & ~index.starts & has_spent & (events > 0.0) & (spent > 0.0)
             with np.errstate(divide="ignore", invalid="ignore"):
                 vs = np.log((a + 1.0) / (spent / events + 1.0))
             x[order[ok], self._col["amount.vs_usual"]] = vs[ok]

@@ -7,7 +7,7 @@ normalising each distinct raw value once with the very same per-field normaliser
 
 from __future__ import annotations
 
-from collections.abc import Callable, Sequence
+from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -15,13 +15,7 @@ import numpy as np
 from scoring.config import ScoringConfig
 from scoring.features import EVENT_TYPES, FLAGS
 from scoring.hashing import KeyHasher
-from scoring.identifiers import (
-    Normalised,
-    normalise_email,
-    normalise_ip,
-    normalise_opaque,
-    normalise_phone,
-)
+from scoring.identifiers import Normalised, field_normaliser
 
 FIELDS = ("account_id", "device_id", "ip", "phone", "email")
 _FLAG_BITS = {flag: 1 << i for i, flag in enumerate(FLAGS)}
@@ -46,18 +40,6 @@ class PlannedColumns:
 
     def __len__(self) -> int:
         return len(self.ts_s)
-
-
-def _normaliser(field: str, default_region: str | None) -> Callable[[str], Normalised]:
-    if field == "account_id":
-        return lambda raw: normalise_opaque("account", raw)
-    if field == "device_id":
-        return lambda raw: normalise_opaque("device", raw)
-    if field == "ip":
-        return normalise_ip
-    if field == "phone":
-        return lambda raw: normalise_phone(raw, default_region)
-    return normalise_email
 
 
 def _factorise(values: Sequence[str | None]) -> tuple[np.ndarray, list[str]]:
@@ -100,7 +82,7 @@ class ColumnPlanner:
         flags = np.zeros(n, dtype=np.int64)
         for field in FIELDS:
             codes, distinct = _factorise(fields[field])
-            normalise = _normaliser(field, self.default_region)
+            normalise = field_normaliser(field, self.default_region)
             results = [normalise(raw) for raw in distinct]
             flag_bits = np.array(
                 [sum(_FLAG_BITS.get(f, 0) for f in r.flags) for r in results] + [0],
@@ -134,11 +116,9 @@ class ColumnPlanner:
             sampled=self._sampled(event_id),
         )
 
-    def _kind_codes(
-        self, kind: str, results: list[Normalised]
-    ) -> tuple[np.ndarray, list[bytes]]:
+    def _kind_codes(self, kind: str, results: list[Normalised]) -> tuple[np.ndarray, list[bytes]]:
         """Per distinct raw value, the code of its key of ``kind`` (-1 if none); the digests."""
-        digest = self.hasher.digest
+        digest = self.hasher.digest_uncached
         codes: dict[bytes, int] = {}
         per_value = np.full(len(results), -1, dtype=np.int64)
         for i, r in enumerate(results):

@@ -84,6 +84,9 @@ class SegmentCatch:
         Fraud alerted; fractional when alerts were given as weights (expected counts).
     catch_rate
         caught / fraud; NaN when the segment has no fraud.
+    alerted_share
+        Share of the segment's events alerted (expected share with weights): for a segment
+        that is all attack, its catch rate whatever the labels; for a benign one, false alarms.
 
     Examples
     --------
@@ -96,6 +99,7 @@ class SegmentCatch:
     fraud: int
     caught: float
     catch_rate: float
+    alerted_share: float = math.nan
 
 
 def segment_catch_rates(
@@ -131,6 +135,7 @@ def segment_catch_rates(
     events = np.bincount(which, minlength=names.size)
     frauds = np.bincount(which, weights=fraud, minlength=names.size)
     caught = np.bincount(which, weights=fraud * weights, minlength=names.size)
+    alerted = np.bincount(which, weights=weights, minlength=names.size)
     return [
         SegmentCatch(
             segment=str(name),
@@ -138,6 +143,7 @@ def segment_catch_rates(
             fraud=int(frauds[i]),
             caught=float(caught[i]),
             catch_rate=float(caught[i] / frauds[i]) if frauds[i] else math.nan,
+            alerted_share=float(alerted[i] / events[i]),
         )
         for i, name in enumerate(names)
     ]

@@ -135,7 +135,6 @@ class FeatureReader:
         self._short_window_s, self._long_window_s = config.fanout_windows_s
         m = config.fanout_buckets
         self._log_counts = [math.log1p(linear_count(k, m)) for k in range(m + 1)]
-        self._bucket = lambda digest: int.from_bytes(digest[4:8], "big") % m
         self._type_index = {t: i for i, t in enumerate(EVENT_TYPES)}
         first_flag = self._event_offset + len(EVENT_TYPES) + 2
         self._flag_slots = [(first_flag + i, f) for i, f in enumerate(FLAGS)]
@@ -231,9 +230,12 @@ class FeatureReader:
             x[offset] = table[occ_short]
             x[offset + 1] = table[occ_long]
         if other is not None and profile.first_s is not None:
-            last = buckets.get(self._bucket(other[0])) if buckets else None
-            if last is None or last <= t_s - self._long_window_s:
+            own = buckets.get(self._bucket(other[0])) if buckets else None
+            if own is None or own <= t_s - self._long_window_s:
                 x[offset + 2] = 1.0
+
+    def _bucket(self, digest: bytes) -> int:
+        return bucket_of(digest, self.config.fanout_buckets)
 
     def _event_features(
         self,

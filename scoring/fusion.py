@@ -65,6 +65,19 @@ def sigmoid(z: float) -> float:
     return e / (1.0 + e)
 
 
+def sigmoid_array(z: np.ndarray) -> np.ndarray:
+    """`sigmoid` of every element (same formula, numpy's exp).
+
+    >>> sigmoid_array(np.array([0.0, -800.0])).tolist()
+    [0.5, 0.0]
+    """
+    with np.errstate(over="ignore"):
+        e = np.exp(np.where(z > -700, z, -700.0))
+        pos = 1.0 / (1.0 + np.exp(-np.maximum(z, 0.0)))
+        neg = np.where(z > -700, e / (1.0 + e), 0.0)
+    return np.where(z >= 0, pos, neg)
+
+
 @dataclass(frozen=True)
 class ModelSnapshot:
     """Plain-number state of the online model: enough to predict, and to resume learning.
@@ -102,10 +115,12 @@ class ModelSnapshot:
 
     def contributions(self, inputs: Sequence[float]) -> np.ndarray:
         """Per-input log-odds contributions ``w_i * (x_i - mean_i) / std_i``."""
-        return self._scaled(np.asarray(inputs, dtype=np.float64)) * self._weights_array
+        out: np.ndarray = self._scaled(np.asarray(inputs, dtype=np.float64)) * self._weights_array
+        return out
 
     def _scaled(self, x: np.ndarray) -> np.ndarray:
-        return (x - self._means_array) * self._inv_std_array
+        out: np.ndarray = (x - self._means_array) * self._inv_std_array
+        return out
 
     @property
     def _means_array(self) -> np.ndarray:
@@ -117,7 +132,7 @@ class ModelSnapshot:
 
     @property
     def _inv_std_array(self) -> np.ndarray:
-        cached = self.__dict__.get("_inv_std")
+        cached: np.ndarray | None = self.__dict__.get("_inv_std")
         if cached is None:
             cached = inverse_std(np.asarray(self.variances, dtype=np.float64))
             object.__setattr__(self, "_inv_std", cached)
@@ -149,13 +164,16 @@ class ModelSnapshot:
             if raw.get("format") != SNAPSHOT_FORMAT:
                 raise SnapshotError(f"unknown snapshot format {raw.get('format')!r}")
             n = len(raw["features"])
-            vectors = [tuple(float(v) for v in raw[k]) for k in _VECTORS]
-            if any(len(v) != n for v in vectors):
+            counts, means, variances, weights = (tuple(float(v) for v in raw[k]) for k in _VECTORS)
+            if any(len(v) != n for v in (counts, means, variances, weights)):
                 raise SnapshotError("snapshot vectors differ in length from its feature list")
             return cls(
                 int(raw["version"]),
                 tuple(str(f) for f in raw["features"]),
-                *vectors,
+                counts,
+                means,
+                variances,
+                weights,
                 float(raw["intercept"]),
                 int(raw["positives"]),
                 int(raw["negatives"]),
@@ -186,7 +204,7 @@ def blend_of(config: ScoringConfig, positives: int, negatives: int) -> float:
 
 def _cached_array(snapshot: ModelSnapshot, name: str) -> np.ndarray:
     key = f"_cache_{name}"
-    cached = snapshot.__dict__.get(key)
+    cached: np.ndarray | None = snapshot.__dict__.get(key)
     if cached is None:
         cached = np.asarray(getattr(snapshot, name), dtype=np.float64)
         object.__setattr__(snapshot, key, cached)
@@ -387,7 +405,10 @@ class Fusion:
         a reason), except ages, where youth raising the risk is a reason in plain words.
         """
         w = self.snapshot._weights_array if weights is None else weights
-        return self._explains_array & ((w[: len(self.layout.names)] >= 0) | self._age_array)
+        out: np.ndarray = self._explains_array & (
+            (w[: len(self.layout.names)] >= 0) | self._age_array
+        )
+        return out
 
     def _model_members(
         self, x: Sequence[float], contributions: np.ndarray, a: float
@@ -431,9 +452,7 @@ def choose_reasons(
             held[1], held[2], held[3] = code, value, weight
     ranked = sorted(groups.items(), key=lambda item: (-float(item[1][0]), item[0]))
     return [
-        (str(held[1]), float(held[2]))
-        for _, held in ranked[:k]
-        if float(held[0]) > REASON_FLOOR
+        (str(held[1]), float(held[2])) for _, held in ranked[:k] if float(held[0]) > REASON_FLOOR
     ]
 
 

@@ -25,6 +25,7 @@ from __future__ import annotations
 
 import ipaddress
 import re
+import socket
 from functools import lru_cache
 
 from scoring.identifiers_base import (
@@ -36,7 +37,7 @@ from scoring.identifiers_base import (
     fold_width,
     require_text,
 )
-from scoring.identifiers_ranges import IPAddress, special_ranges
+from scoring.identifiers_ranges import IPAddress, special_ranges, special_ranges_of
 
 IPV4_NET_BITS = 24
 """Prefix length of an IPv4 ``ip_net`` key."""
@@ -123,12 +124,72 @@ def network_text(address: IPAddress) -> str:
     """
     if isinstance(address, ipaddress.IPv4Address):
         mask = (_LOW_32_BITS << (32 - IPV4_NET_BITS)) & _LOW_32_BITS
-        return f"{ipaddress.IPv4Address(int(address) & mask)}/{IPV4_NET_BITS}"
+        value = int(address) & mask  # dotted quad written directly: same text, faster
+        return f"{value >> 24}.{value >> 16 & 255}.{value >> 8 & 255}.{value & 255}/{IPV4_NET_BITS}"
     mask = (_ALL_128_BITS << (128 - IPV6_NET_BITS)) & _ALL_128_BITS
     return f"{ipaddress.IPv6Address(int(address) & mask)}/{IPV6_NET_BITS}"
 
 
+NO_FLAGS = flag_set([])
+_V6_FLAGS = flag_set(["ip_v6"])
+_DOTTED_QUAD = re.compile(r"(?:0|[1-9][0-9]{0,2})(?:\.(?:0|[1-9][0-9]{0,2})){3}")
+
+
+def _plain_ipv4(raw: str) -> Normalised | None:
+    """Fast path for the commonest input, a bare canonical dotted quad; None for anything else.
+
+    Gives exactly what the general path gives (the tests compare both on every case), without
+    building `ipaddress` objects.
+    """
+    text = raw.strip()
+    if not text.isascii() or _DOTTED_QUAD.fullmatch(text) is None:
+        return None
+    a, b, c, d = (int(part) for part in text.split("."))
+    if a > 255 or b > 255 or c > 255 or d > 255:
+        return None
+    value = a << 24 | b << 16 | c << 8 | d
+    rows = special_ranges_of(value, 4)
+    if rows:
+        return None  # rare: let the general path build the flags
+    return Normalised((("ip", text), ("ip_net", f"{a}.{b}.{c}.0/{IPV4_NET_BITS}")), NO_FLAGS)
+
+
+_HEX_COLON = re.compile(r"[0-9A-Fa-f:]{2,39}")
+_GLOBAL_UNICAST_TOP = 0b001  # 2000::/3
+
+
+def _plain_ipv6(raw: str) -> Normalised | None:
+    """Fast path for a bare IPv6 address in global unicast space; None for anything else.
+
+    The C library's ``inet_pton``/``inet_ntop`` parse and print the same RFC 4291 text and
+    RFC 5952 canonical form as `ipaddress` for plain hexadecimal addresses (no zone, no
+    embedded dotted quad, no brackets); the tests compare both paths on many spellings.
+    """
+    text = raw.strip()
+    if _HEX_COLON.fullmatch(text) is None:
+        return None
+    try:
+        packed = socket.inet_pton(socket.AF_INET6, text)
+    except (OSError, ValueError):
+        return None
+    value = int.from_bytes(packed, "big")
+    if value >> 125 != _GLOBAL_UNICAST_TOP or special_ranges_of(value, 6):
+        return None
+    canonical = socket.inet_ntop(socket.AF_INET6, packed)
+    network = socket.inet_ntop(socket.AF_INET6, packed[:8] + bytes(8))
+    keys = (("ip", canonical), ("ip_net", f"{network}/{IPV6_NET_BITS}"))
+    return Normalised(keys, _V6_FLAGS)
+
+
 def _normalise_ip(raw: str) -> Normalised:
+    if IPV4_NET_BITS == 24:
+        fast = _plain_ipv4(raw)
+        if fast is not None:
+            return fast
+    if IPV6_NET_BITS == 64 and ":" in raw:
+        fast = _plain_ipv6(raw)
+        if fast is not None:
+            return fast
     address = parse_ip(raw)
     if address is None:
         return _INVALID if fold_width(raw) else EMPTY

@@ -32,11 +32,7 @@ from functools import lru_cache
 
 import phonenumbers
 from phonenumbers import PhoneMetadata, PhoneNumberType
-from phonenumbers.phonenumberutil import (
-    NON_DIGITS_PATTERN,
-    REGION_CODE_FOR_NON_GEO_ENTITY,
-    _number_type_helper,
-)
+from phonenumbers.phonenumberutil import NON_DIGITS_PATTERN, _number_type_helper
 from phonenumbers.re_util import re_compile
 
 from scoring.identifiers_base import (
@@ -62,7 +58,7 @@ _MAX_TEXT_CHARS = 64
 _EXTENSION = re.compile(r"(?:;ext=|ext(?:ension)?\.?|x|#)\s*[0-9]{1,10}\s*#?$", re.IGNORECASE)
 _SEPARATORS = re.compile(r"[\s.\-/()\[\]\u2010-\u2015\u2212]")
 _DIGITS = re.compile(r"[0-9]+")
-_TYPE_FLAGS = {
+_TYPE_FLAGS: dict[int, str] = {
     PhoneNumberType.FIXED_LINE: "phone_fixed",
     PhoneNumberType.MOBILE: "phone_mobile",
     PhoneNumberType.FIXED_LINE_OR_MOBILE: "phone_fixed_or_mobile",
@@ -77,6 +73,9 @@ _TYPE_FLAGS = {
 }
 _INVALID = Normalised((), flag_set(["phone_invalid"]))
 _NON_DIGITS = re.compile(NON_DIGITS_PATTERN)
+NON_GEO_REGION: str = phonenumbers.REGION_CODE_FOR_NON_GEO_ENTITY
+UNKNOWN: int = PhoneNumberType.UNKNOWN
+MOBILE: int = PhoneNumberType.MOBILE
 
 
 @dataclass(frozen=True, slots=True)
@@ -126,9 +125,7 @@ def _prefix(country_code: int, national: str, ndc_digits: int) -> tuple[str, str
     return ("phone_prefix", f"+{country_code}{national[:digits]}")
 
 
-def _region_and_type(
-    number: phonenumbers.PhoneNumber, nsn: str
-) -> tuple[str | None, PhoneNumberType]:
+def _region_and_type(number: phonenumbers.PhoneNumber, nsn: str) -> tuple[str | None, int]:
     """`phonenumbers.region_code_for_number` and `number_type` in one pass.
 
     The library computes the type up to three times per number (validity, type, and again
@@ -136,11 +133,12 @@ def _region_and_type(
     the type when the region itself was found by matching the number's type. The tests check
     the results against the library's own functions on every example number it ships.
     """
-    regions = phonenumbers.COUNTRY_CODE_TO_REGION_CODE.get(number.country_code)
+    country_code = number.country_code or 0
+    regions = phonenumbers.COUNTRY_CODE_TO_REGION_CODE.get(country_code)
     if regions is None:
-        return None, PhoneNumberType.UNKNOWN
+        return None, UNKNOWN
     found: str | None = None
-    known_type: PhoneNumberType | None = None
+    known_type: int | None = None
     if len(regions) == 1:
         found = regions[0]
     else:
@@ -153,33 +151,34 @@ def _region_and_type(
                     found = region
                     break
                 continue
-            candidate = _number_type_helper(nsn, metadata)
-            if candidate != PhoneNumberType.UNKNOWN:
+            candidate = int(_number_type_helper(nsn, metadata))
+            if candidate != UNKNOWN:
                 found, known_type = region, candidate
                 break
     if found is None:
-        return None, PhoneNumberType.UNKNOWN
-    metadata = PhoneMetadata.metadata_for_region_or_calling_code(number.country_code, found)
+        return None, UNKNOWN
+    metadata = PhoneMetadata.metadata_for_region_or_calling_code(country_code, found)
     if metadata is None:
-        return found, PhoneNumberType.UNKNOWN
+        return found, UNKNOWN
     if known_type is None:
-        known_type = _number_type_helper(nsn, metadata)
+        known_type = int(_number_type_helper(nsn, metadata))
     return found, known_type
 
 
-def _valid(number: phonenumbers.PhoneNumber, region: str | None, ntype: PhoneNumberType) -> bool:
+def _valid(number: phonenumbers.PhoneNumber, region: str | None, ntype: int) -> bool:
     """`phonenumbers.is_valid_number`, given the region and type already found."""
-    if region is None or ntype == PhoneNumberType.UNKNOWN:
+    if region is None or ntype == UNKNOWN:
         return False
-    metadata = PhoneMetadata.metadata_for_region_or_calling_code(number.country_code, region)
+    country_code = number.country_code or 0
+    metadata = PhoneMetadata.metadata_for_region_or_calling_code(country_code, region)
     if metadata is None:
         return False
-    return region == REGION_CODE_FOR_NON_GEO_ENTITY or (
-        number.country_code == phonenumbers.country_code_for_valid_region(region)
+    return region == NON_GEO_REGION or (
+        country_code == phonenumbers.country_code_for_valid_region(region)
     )
 
 
-def _ndc_length(number: phonenumbers.PhoneNumber, ntype: PhoneNumberType) -> int:
+def _ndc_length(number: phonenumbers.PhoneNumber, ntype: int) -> int:
     """`phonenumbers.length_of_national_destination_code`, given the type already found."""
     if number.extension is not None:
         return int(phonenumbers.length_of_national_destination_code(number))
@@ -187,7 +186,7 @@ def _ndc_length(number: phonenumbers.PhoneNumber, ntype: PhoneNumberType) -> int
     groups = _NON_DIGITS.split(text)
     if len(groups) <= 3:
         return 0
-    if ntype == PhoneNumberType.MOBILE and phonenumbers.country_mobile_token(number.country_code):
+    if ntype == MOBILE and phonenumbers.country_mobile_token(number.country_code or 0):
         return len(groups[2]) + len(groups[3])
     return len(groups[2])
 

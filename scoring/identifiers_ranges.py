@@ -131,6 +131,21 @@ def _spans(version: int) -> tuple[_Span, ...]:
 
 
 _SPANS = {4: _spans(4), 6: _spans(6)}
+_BUCKET_BITS = {4: 8, 6: 16}
+_WIDTH = {4: 32, 6: 128}
+
+
+def _touched(version: int) -> frozenset[int]:
+    """Leading ``_BUCKET_BITS`` values that any special-purpose range of `version` reaches."""
+    shift = _WIDTH[version] - _BUCKET_BITS[version]
+    return frozenset(
+        bucket
+        for first, last, _, _ in _SPANS[version]
+        for bucket in range(first >> shift, (last >> shift) + 1)
+    )
+
+
+_TOUCHED = {4: _touched(4), 6: _touched(6)}
 
 
 def special_ranges(address: IPAddress) -> tuple[SpecialRange, ...]:
@@ -143,5 +158,15 @@ def special_ranges(address: IPAddress) -> tuple[SpecialRange, ...]:
     >>> special_ranges(ipaddress.ip_address("11.22.33.44"))
     ()
     """
-    value = int(address)
-    return tuple(row for first, last, _, row in _SPANS[address.version] if first <= value <= last)
+    return special_ranges_of(int(address), address.version)
+
+
+def special_ranges_of(value: int, version: int) -> tuple[SpecialRange, ...]:
+    """`special_ranges` of an address given as an integer and an IP version (4 or 6).
+
+    >>> [row.name for row in special_ranges_of(0x0A000001, 4)]
+    ['private-use']
+    """
+    if value >> (_WIDTH[version] - _BUCKET_BITS[version]) not in _TOUCHED[version]:
+        return ()  # fast path: no range reaches this address's leading bits
+    return tuple(row for first, last, _, row in _SPANS[version] if first <= value <= last)

@@ -100,6 +100,7 @@ class RecordCodec:
         self._offsets = np.asarray([128.0 if s == SIGNED else 0.0 for s in self._scales])
         self._multipliers = np.asarray([1.0 if s == BINARY else STEP for s in self._scales])
         self._graded = np.asarray([s != BINARY for s in self._scales])
+
     def encode(self, record: EventRecord) -> bytes:
         kinds_mask = 0
         digests = bytearray()
@@ -133,9 +134,10 @@ class RecordCodec:
 
     def codes(self, x: np.ndarray) -> np.ndarray:
         """`quantise` applied to a feature vector (or a matrix of them, one row per event)."""
-        codes = np.rint(x * self._multipliers)
+        codes: np.ndarray = np.rint(x * self._multipliers)
         codes += self._offsets
-        return np.clip(codes, 0.0, 255.0, out=codes)
+        np.clip(codes, 0.0, 255.0, out=codes)
+        return codes
 
     def decode(self, data: bytes) -> EventRecord:
         """Parse `encode` output; raises `RecordError` on anything else."""

@@ -102,7 +102,11 @@ def takeover(f: Callable[[str], Number], ops: Ops) -> list[tuple[str, Number, Nu
     spend = established & (new_device | new_net) & (vs_usual > 1.0)
     return [
         ("account.new_device_and_network", ops.where(both, 1.5, 0.0), age_d),
-        ("amount.vs_usual", ops.where(spend, ops.minimum(0.8 * vs_usual, 2.0), 0.0), ops.exp(vs_usual)),
+        (
+            "amount.vs_usual",
+            ops.where(spend, ops.minimum(0.8 * vs_usual, 2.0), 0.0),
+            ops.exp(vs_usual),
+        ),
     ]
 
 

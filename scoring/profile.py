@@ -134,10 +134,11 @@ class Profile:
     __hash__ = None  # type: ignore[assignment]
 
     def to_members(self) -> dict[str, float]:
-        """Flat form: ``c{j}.{epoch}``, ``b.``/``g.``/``s.{epoch}``, ``f``, ``l``, ``{letter}{bucket}``."""
+        """Flat form: ``{j}.{epoch}`` (counter j), ``b.``/``g.``/``s.{epoch}``, ``f``, ``l``,
+        ``{letter}{bucket}``. Names are short: there are millions of records."""
         out: dict[str, float] = {}
         for j, sums in enumerate(self.counts):
-            out.update({f"c{j}.{e}": v for e, v in sums.items()})
+            out.update({f"{j}.{e}": v for e, v in sums.items()})
         for prefix, sums in (("b", self.bad), ("g", self.good), ("s", self.amount)):
             out.update({f"{prefix}.{e}": v for e, v in sums.items()})
         if self.first_s is not None:
@@ -160,8 +161,8 @@ class Profile:
         head, _, epoch = name.partition(".")
         if epoch:
             sums = {"b": self.bad, "g": self.good, "s": self.amount}.get(head)
-            if sums is None and head[:1] == "c" and head[1:].isdigit():
-                j = int(head[1:])
+            if sums is None and head.isdigit():
+                j = int(head)
                 sums = self.counts[j] if j < len(self.counts) else None
             if sums is not None:
                 sums[int(epoch)] = value

@@ -7,6 +7,7 @@ one place so that it stays consistent across the service, the backfill files and
 from __future__ import annotations
 
 import math
+from functools import lru_cache
 
 KIND_WORDS = {
     "account": "account",
@@ -74,6 +75,9 @@ def _fanout(kind_words: str, stat: str, value: float) -> str | None:
 def describe(code: str, value: float) -> str:
     """Plain-words reason for a reason code and the number it quotes.
 
+    The number is first rounded to what the words show (two decimals for amounts, one
+    otherwise), so that equal-looking reasons are equal strings and the wording can be cached.
+
     >>> describe("device.accounts", 7.2)
     'device: used by about 7 accounts recently'
     >>> describe("ip_net.accounts_1d", 41.0)
@@ -81,6 +85,23 @@ def describe(code: str, value: float) -> str:
     >>> describe("amount.vs_usual", 6.0)
     "amount: about 6.0x this account's usual spend"
     """
+    return _describe(code, display_round(code, value))
+
+
+def display_round(code: str, value: float) -> float:
+    """The number a reason shows: to 2 decimals for amounts, 1 otherwise, halves up.
+
+    Written with floor so that numpy computes the very same numbers for a whole column.
+
+    >>> display_round("device.accounts", 7.25), display_round("amount.log", 12.345)
+    (7.3, 12.35)
+    """
+    scale = 100.0 if code == "amount.log" else 10.0
+    return math.floor(value * scale + 0.5) / scale
+
+
+@lru_cache(maxsize=1 << 16)
+def _describe(code: str, value: float) -> str:
     if code in _FIXED:
         return _FIXED[code]
     head, _, stat = code.partition(".")
@@ -91,7 +112,7 @@ def describe(code: str, value: float) -> str:
     if head == "type":
         return f"event type: {stat}"
     if head == "flag":
-        return describe(_flag_code(stat), value)
+        return _describe(_flag_code(stat), value)
     kind_words = KIND_WORDS.get(head)
     if kind_words is None:
         return code

@@ -48,7 +48,8 @@ keyed-hashed: they are never stored or logged in clear.
 """
 
 
-def _check(settings: Settings) -> None:
+def check_settings(settings: Settings) -> None:
+    """Refuse settings the service cannot run with (`SettingsError`, with what to change)."""
     settings.check_production()
     if settings.default_region is not None:
         try:
@@ -225,11 +226,11 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     """The emberscore HTTP application (refuses settings fit only for trying out in production).
 
     >>> app = create_app(Settings(_env_file=None))
-    >>> sorted(r.path for r in app.routes if r.path.startswith("/v1"))[:2]
+    >>> sorted(p for p in app.openapi()["paths"] if p.startswith("/v1"))[:2]
     ['/v1/events', '/v1/labels']
     """
     settings = settings if settings is not None else Settings()
-    _check(settings)
+    check_settings(settings)
     metrics = Metrics(settings.metrics_dir)
     app = FastAPI(
         title="emberscore",
@@ -241,6 +242,10 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     errors.install(app)
     for module in (score, events, labels, reputation, health):
         app.include_router(module.router)
+    if settings.reference_endpoint:
+        from service.routes import reference  # benchmark only
+
+        app.include_router(reference.router)
     app.add_middleware(errors.ContainErrors)
     app.add_middleware(BodySizeLimit, max_body_bytes=settings.max_body_bytes)
     app.add_middleware(RequestMetrics, metrics=metrics)  # outermost: times everything

@@ -22,7 +22,9 @@ def _rates(text: str) -> tuple[float, ...]:
     try:
         rates = tuple(float(part) for part in text.split(",") if part.strip())
     except ValueError as exc:
-        raise argparse.ArgumentTypeError(f"not a comma-separated list of numbers: {text!r}") from exc
+        raise argparse.ArgumentTypeError(
+            f"not a comma-separated list of numbers: {text!r}"
+        ) from exc
     if not rates or any(not 0.0 < r < 1.0 for r in rates):
         raise argparse.ArgumentTypeError("alert rates must be between 0 and 1, e.g. 0.005,0.01")
     return rates
@@ -82,7 +84,9 @@ def _add_evaluate(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> N
 def _add_shadow(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     p = sub.add_parser("shadow", help="compare emberscore's decisions with the rules in force")
     p.add_argument("scores", nargs="?", help="scores file with current_decision")
-    p.add_argument("--from", dest="from_redis", metavar="REDIS_URL", help="read the live shadow log")
+    p.add_argument(
+        "--from", dest="from_redis", metavar="REDIS_URL", help="read the live shadow log"
+    )
     p.add_argument("--labels", help="labels file")
     p.add_argument("--html", required=True, help="report to write")
     p.add_argument("--review-capacity", type=float, help="reviews a day the team can do")
@@ -100,19 +104,19 @@ def _run_demo(args: argparse.Namespace) -> int:
 def _run_serve(args: argparse.Namespace) -> int:
     from service.workers.serve import serve
 
-    return serve(host=args.host, port=args.port, workers=args.workers)
+    return int(serve(host=args.host, port=args.port, workers=args.workers))
 
 
 def _run_learn(args: argparse.Namespace) -> int:
     from service.workers.learn_loop import run_learner
 
-    return run_learner(once=args.once)
+    return int(run_learner(once=args.once))
 
 
 def _run_backfill(args: argparse.Namespace) -> int:
     from service.workers.backfill import run_backfill
 
-    return run_backfill(args)
+    return int(run_backfill(args))
 
 
 def _run_evaluate(args: argparse.Namespace) -> int:
@@ -134,7 +138,7 @@ def _run_evaluate(args: argparse.Namespace) -> int:
 def _run_shadow(args: argparse.Namespace) -> int:
     from service.workers.shadow_command import run_shadow
 
-    return run_shadow(args)
+    return int(run_shadow(args))
 
 
 def build_parser() -> argparse.ArgumentParser:

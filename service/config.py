@@ -7,11 +7,10 @@ API keys (`Settings.check_production` refuses to start otherwise).
 
 from __future__ import annotations
 
-from typing import Literal
+from typing import Annotated, Literal
 
 from pydantic import Field, SecretStr, field_validator
 from pydantic_settings import BaseSettings, NoDecode, SettingsConfigDict
-from typing_extensions import Annotated
 
 from scoring.config import DAY_S, ScoringConfig
 
@@ -60,6 +59,8 @@ class Settings(BaseSettings):
     """How long the learner waits for new labels before it looks at maturity again."""
     learner_metrics_port: int | None = None
     """Port of the learner's own Prometheus endpoint (label lag, label outcomes); None: off."""
+    reference_endpoint: bool = False
+    """Serve ``POST /v1/reference``, the benchmark's floor under ``/v1/score`` (Redis only)."""
     log_shards: int = 1024
     shadow_log_max: int = 1_000_000
     default_region: str | None = None

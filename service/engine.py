@@ -91,7 +91,10 @@ class Engine:
         )
         record = EventRecord(event.ts_s, plan.identifiers, tuple(x), a.risk, a.model_version)
         await self.store.commit(
-            plan, answer.to_bytes(), self.codec.encode(record), self._mature_at(plan.event_digest, event.ts_s)
+            plan,
+            answer.to_bytes(),
+            self.codec.encode(record),
+            self._mature_at(plan.event_digest, event.ts_s),
         )
         return ScoreResult(event.event_id, a.risk, a.decision, a.reasons, a.codes, a.model_version)
 

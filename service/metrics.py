@@ -25,6 +25,7 @@ from prometheus_client import (
     Histogram,
     generate_latest,
     multiprocess,
+    values,
 )
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
@@ -71,6 +72,14 @@ class Metrics:
     """
 
     def __init__(self, multiprocess_dir: str | None = None) -> None:
+        if multiprocess_dir is not None and values.ValueClass is values.MutexValue:
+            # prometheus_client chose single-process values when it was imported (no
+            # PROMETHEUS_MULTIPROC_DIR then): reading the folder would show nothing.
+            logging.getLogger("emberscore.service").warning(
+                "metrics folder ignored: PROMETHEUS_MULTIPROC_DIR was not set at start "
+                "(`emberscore serve` sets it for several workers)"
+            )
+            multiprocess_dir = None
         self.multiprocess_dir = multiprocess_dir
         r = self.registry = CollectorRegistry()
         self.latency = Histogram(

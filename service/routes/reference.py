@@ -14,9 +14,10 @@ value reaches Redis and the names mean nothing outside the process. Each identif
 as the kinds it gives when valid (DESIGN.md, "Identifiers"): account 1, device 1, ip 2, phone 2,
 e-mail 2.
 
-The application includes this router when ``EMBERSCORE_REFERENCE_ENDPOINT=true``; it needs the
-Redis store (``runtime.store.fast``, the request-path client, and ``runtime.store.planner``) and
-answers 503 on the embedded store.
+The application includes this router when ``EMBERSCORE_REFERENCE_ENDPOINT=true``. It needs the
+Redis store: it uses ``runtime.store.fast`` (the store's request-path client) and
+``runtime.store.planner`` (its `WritePlanner`) through the `Runtime` dependency, and answers 503
+on the embedded store or while Redis is not connected.
 """
 
 from __future__ import annotations
@@ -35,7 +36,6 @@ from scoring.profile import TimeBasis
 from service.api_models import EventIn, Message, ValidationProblems
 from service.routes.deps import ApiKey, Runtime, RuntimeDep, store_unavailable
 from service.stores.base import StoreUnavailable
-from service.stores.redis_client import guard
 
 router = APIRouter(prefix="/v1", tags=["benchmark"], dependencies=[ApiKey])
 
@@ -117,6 +117,8 @@ async def round_trip(client: Any, planner: Any, plan: EventPlan, budget_s: float
 
     ``client`` is the store's request-path Redis client, ``planner`` its `WritePlanner`.
     """
+    from service.stores.redis_client import guard  # imports redis: only when Redis is in use
+
     writes = planner.event(plan)
     async with guard("the reference round trip", budget_s):
         pipe = client.pipeline(transaction=False)
@@ -127,8 +129,14 @@ async def round_trip(client: Any, planner: Any, plan: EventPlan, budget_s: float
 
 async def _answer(runtime: Runtime, plan: EventPlan) -> int:
     store = runtime.store
-    if getattr(store, "fast", None) is None:
-        raise HTTPException(503, "the reference endpoint needs the Redis store")
+    if runtime.mode != "redis":
+        raise HTTPException(
+            503, "the reference endpoint needs the Redis store: set EMBERSCORE_REDIS_URL"
+        )
+    from service.stores.redis import RedisStore  # as in service.app: redis only when in use
+
+    if not isinstance(store, RedisStore):  # Redis was not reachable yet
+        raise store_unavailable("reference")
     try:
         return await round_trip(store.fast, store.planner, plan, runtime.score_budget_s)
     except StoreUnavailable as exc:

@@ -144,11 +144,11 @@ class MemoryStore:
         if self._sequence % SWEEP_EVERY:
             return
         now = self._now_s
-        for key in [k for k, (_, expires) in self.answers.items() if expires <= now]:
-            del self.answers[key]
-        for key in [k for k, (_, expires) in self.records.items() if expires <= now]:
-            del self.records[key]
-            self.labels.pop(key, None)
+        for digest in [k for k, (_, expires) in self.answers.items() if expires <= now]:
+            del self.answers[digest]
+        for digest in [k for k, (_, expires) in self.records.items() if expires <= now]:
+            del self.records[digest]
+            self.labels.pop(digest, None)
         ttl = self.config.ttl_s
         for key in [k for k, p in self.profiles.items() if p.last_s and now - p.last_s > ttl]:
             del self.profiles[key]

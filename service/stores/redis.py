@@ -47,7 +47,9 @@ from service.stores.redis_keys import (
     identifier_key,
     label_fields,
     label_key,
+    queue_writes,
     record_stream_key,
+    reply_count,
     shadow_fields,
     shard_of,
 )
@@ -124,7 +126,7 @@ class RedisStore:
             for key, write in zip(keys, writes, strict=True):
                 if read:
                     pipe.zrange(key, 0, -1, withscores=True)
-                self._queue_writes(pipe, key, write)
+                queue_writes(pipe, key, write, self._ttl_s)
             results = await pipe.execute()
         claim = results[0]
         if ask_since:
@@ -139,26 +141,6 @@ class RedisStore:
             profiles=self._profiles(results, ask_since, writes), observed_since_s=self._since_s
         )
 
-    def _queue_writes(self, pipe: Any, key: str, write: ProfileWrites) -> None:
-        for name, value in write.increments.items():
-            pipe.zincrby(key, value, name)
-        if write.lowest:
-            pipe.zadd(key, write.lowest, lt=True)
-        if write.highest:
-            pipe.zadd(key, write.highest, gt=True)
-        if write.stale:
-            pipe.zrem(key, *write.stale)
-        pipe.expire(key, self._ttl_s)
-
-    @staticmethod
-    def _commands(write: ProfileWrites) -> int:
-        """How many pipeline replies `_queue_writes` adds for one identifier."""
-        return (
-            len(write.increments)
-            + sum(1 for part in (write.lowest, write.highest, write.stale) if part)
-            + 1
-        )
-
     def _profiles(
         self, results: list[Any], ask_since: bool, writes: list[ProfileWrites]
     ) -> list[Profile | None]:
@@ -166,7 +148,7 @@ class RedisStore:
         out: list[Profile | None] = []
         for write in writes:
             out.append(self._profile_of(results[at]))
-            at += 1 + self._commands(write)
+            at += 1 + reply_count(write)
         return out
 
     def _profile_of(self, pairs: list[tuple[bytes, float]]) -> Profile | None:
@@ -331,9 +313,17 @@ class RedisStore:
     # -- shadow log ---------------------------------------------------------------------------
 
     async def append_shadow(
-        self, event_id: str, ts_s: float, risk: float, decision: str, current_decision: str
+        self,
+        event_id: str,
+        ts_s: float,
+        risk: float,
+        decision: str,
+        current_decision: str | None,
     ) -> None:
-        """Queue one line of the live shadow log (written behind; capped at shadow_log_max)."""
+        """Queue one line of the live shadow log (written behind; capped at shadow_log_max).
+
+        ``current_decision`` is the decision of the rules in force (None: not given).
+        """
         fields = shadow_fields(event_id, ts_s, risk, decision, current_decision)
         cap = self.settings.shadow_log_max
 

@@ -107,6 +107,25 @@ class ProfileWrites:
         return {name: -value for name, value in self.increments.items()}
 
 
+def queue_writes(pipe: Any, key: str, write: ProfileWrites, ttl_s: int) -> None:
+    """Add one identifier's writes to a pipeline: sums, first seen, maxima, stale sums, TTL."""
+    for name, value in write.increments.items():
+        pipe.zincrby(key, value, name)
+    if write.lowest:
+        pipe.zadd(key, write.lowest, lt=True)
+    if write.highest:
+        pipe.zadd(key, write.highest, gt=True)
+    if write.stale:
+        pipe.zrem(key, *write.stale)
+    pipe.expire(key, ttl_s)
+
+
+def reply_count(write: ProfileWrites) -> int:
+    """How many pipeline replies `queue_writes` adds for one identifier."""
+    parts = (write.lowest, write.highest, write.stale)
+    return len(write.increments) + sum(1 for part in parts if part) + 1
+
+
 def _stale_epochs(half_life_s: float, ttl_s: float) -> range:
     """How far behind the written epoch to look for sums to drop (``range`` of offsets).
 
@@ -151,7 +170,7 @@ class WritePlanner:
         self.config = config
         ttl = config.ttl_s
         self._offsets = {
-            **{f"c{j}": _stale_epochs(h, ttl) for j, h in enumerate(config.half_lives_s)},
+            **{f"{j}": _stale_epochs(h, ttl) for j, h in enumerate(config.half_lives_s)},
             "s": _stale_epochs(config.half_lives_s[-1], ttl),
             "b": _stale_epochs(config.label_half_life_s, ttl),
             "g": _stale_epochs(config.label_half_life_s, ttl),
@@ -214,15 +233,15 @@ def label_fields(event_digest: bytes, is_fraud: bool, labeled_at_s: float) -> di
 
 
 def shadow_fields(
-    event_id: str, ts_s: float, risk: float, decision: str, current_decision: str
+    event_id: str, ts_s: float, risk: float, decision: str, current_decision: str | None
 ) -> dict[Any, Any]:
-    """Fields of a shadow-log entry."""
+    """Fields of a shadow-log entry (a missing current decision is kept as an empty string)."""
     return {
         "e": event_id.encode(),
         "t": repr(ts_s).encode(),
         "r": repr(risk).encode(),
         "d": decision.encode(),
-        "c": current_decision.encode(),
+        "c": (current_decision or "").encode(),
     }
 
 

@@ -104,35 +104,48 @@ async def ensure_label_group(client: Client, timeout_s: float) -> None:
                 raise
 
 
-def _labels(reply: Any) -> list[tuple[str, bytes, bool, float]]:
+def _labels(reply: Any) -> tuple[list[tuple[str, bytes, bool, float]], list[str]]:
+    """Labels in an XREADGROUP reply, and the ids of entries trimmed away since delivery."""
     out = []
+    gone = []
     streams: Any = reply or []
     for _, entries in streams:
         for entry_id, fields in entries:
-            if not fields:  # pending, but trimmed from the stream since: nothing to apply
+            if not fields:
+                gone.append(_text(entry_id))
                 continue
             digest = bytes(fields[b"d"])
             flag, labeled_at = text_fields(fields, ("f", "t"))
             out.append((_text(entry_id), digest, flag == "1", float(labeled_at)))
-    return out
+    return out, gone
 
 
 async def read_label_queue(
     client: Client, consumer: str, count: int, block_ms: int, timeout_s: float
 ) -> list[tuple[str, bytes, bool, float]]:
-    """This consumer's pending labels first (a restarted learner loses nothing), then new ones."""
-    async with guard("a label-queue read", timeout_s):
-        reply: Any = await client.xreadgroup(
-            LABEL_GROUP, consumer, {LABEL_QUEUE_KEY: "0"}, count=count
-        )
-    pending = _labels(reply)
-    if pending or any(entries for _, entries in reply or []):
-        return pending
+    """This consumer's pending labels first (a restarted learner loses nothing), then new ones.
+
+    Pending entries that were trimmed from the stream meanwhile have nothing left to apply:
+    they are acknowledged and skipped.
+    """
+    while True:
+        async with guard("a label-queue read", timeout_s):
+            reply: Any = await client.xreadgroup(
+                LABEL_GROUP, consumer, {LABEL_QUEUE_KEY: "0"}, count=count
+            )
+        pending, gone = _labels(reply)
+        if gone:
+            async with guard("acknowledging trimmed labels", timeout_s):
+                await client.xack(LABEL_QUEUE_KEY, LABEL_GROUP, *gone)
+        if pending:
+            return pending
+        if not gone:
+            break
     async with guard("a label-queue read", timeout_s + block_ms / 1000):
         reply = await client.xreadgroup(
             LABEL_GROUP, consumer, {LABEL_QUEUE_KEY: ">"}, count=count, block=block_ms
         )
-    return _labels(reply)
+    return _labels(reply)[0]
 
 
 async def read_shadow_log(client: Client, timeout_s: float) -> ScoreTable:

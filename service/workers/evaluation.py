@@ -79,6 +79,8 @@ class SegmentRow:
     fraud: int
     ours: float
     rules: float | None
+    ours_alerted: float = float("nan")
+    rules_alerted: float | None = None
 
 
 @dataclass(frozen=True)
@@ -194,6 +196,8 @@ def segment_table(
             fraud=row.fraud,
             ours=row.catch_rate,
             rules=None if theirs is None else theirs[i].catch_rate,
+            ours_alerted=row.alerted_share,
+            rules_alerted=None if theirs is None else theirs[i].alerted_share,
         )
         for i, row in enumerate(ours)
     ]
@@ -302,15 +306,26 @@ def _segment_rows(result: EvaluationResult) -> list[str]:
     if result.segments is None:
         return []
     with_rules = result.rules is not None
+    rate = _pct(result.segment_rate)
     lines = [
         "",
-        f"catch rate of labelled fraud per segment, top {_pct(result.segment_rate)} alerted",
-        f"  {'segment':<24}{'events':>10}{'fraud':>8}{'emberscore':>12}"
-        + (f"{'rules':>12}" if with_rules else ""),
+        f"per segment, when each side alerts its top {rate} of events:",
+        "  alerted = share of the segment's events alerted (catch rate of an attack segment,",
+        "  false alarms of a benign one); caught = share of its labelled fraud alerted",
+        f"  {'segment':<24}{'events':>9}{'fraud':>7}"
+        + f"{'alerted':>10}{'caught':>9}"
+        + (f"{'alerted':>10}{'caught':>9}" if with_rules else ""),
+        f"  {'':<40}{'--- emberscore ---':>19}"
+        + (f"{'----- rules -----':>19}" if with_rules else ""),
     ]
     for row in result.segments:
-        line = f"  {row.segment[:24]:<24}{row.events:>10,}{row.fraud:>8,}{_pct(row.ours):>12}"
-        lines.append(line + (f"{_pct(row.rules):>12}" if row.rules is not None else ""))
+        line = (
+            f"  {row.segment[:24]:<24}{row.events:>9,}{row.fraud:>7,}"
+            f"{_pct(row.ours_alerted):>10}{_pct(row.ours):>9}"
+        )
+        if row.rules is not None and row.rules_alerted is not None:
+            line += f"{_pct(row.rules_alerted):>10}{_pct(row.rules):>9}"
+        lines.append(line)
     if result.segment_unknown_ids:
         lines.append(f"  ({result.segment_unknown_ids:,} segment rows name unknown event_ids)")
     return lines

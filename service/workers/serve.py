@@ -88,8 +88,11 @@ def _check_workers(settings: Settings, workers: int) -> None:
 
 
 def prepare_metrics_dir(settings: Settings, workers: int) -> Path | None:
-    """Point every worker at one emptied metrics folder; returns a folder made here, if any."""
-    if workers == 1 and settings.metrics_dir is None:
+    """Point every worker at one emptied metrics folder; returns a folder made here, if any.
+
+    One worker needs no folder: its metrics live in its own memory.
+    """
+    if workers == 1:
         return None
     made = None
     if settings.metrics_dir is None:
@@ -111,8 +114,10 @@ def _say(text: str) -> None:
 
 def serve(host: str | None, port: int | None, workers: int | None) -> int:
     """Run the service until interrupted; returns the exit status."""
+    from service.app import check_settings
+
     settings = Settings()
-    settings.check_production()
+    check_settings(settings)
     host = host or settings.host
     port = port or settings.port
     workers = workers or settings.workers

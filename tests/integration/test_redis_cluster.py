@@ -16,14 +16,14 @@ import numpy as np
 import pytest
 import redis
 
-from service.replay import replay
+from service.replay import event_at, replay
 from service.stores.redis import RedisStore
 from service.stores.redis_keys import identifier_key
 
 pytestmark = [pytest.mark.redis, pytest.mark.slow]
 
 
-async def _replay(kit: Any, url: str, cluster: bool, scenario: Any) -> tuple[Any, Any, dict]:
+async def _replay(kit: Any, url: str, cluster: bool, scenario: Any) -> tuple[Any, Any, Any]:
     settings = kit.settings(url, redis_cluster=cluster)
     store = await RedisStore.connect(settings, settings.scoring_config())
     try:
@@ -35,21 +35,19 @@ async def _replay(kit: Any, url: str, cluster: bool, scenario: Any) -> tuple[Any
         profiles = {key: await store.profile(*key) for key in keys}
         await store.enqueue_labels([(b"\x01" * 8, True, 1.0)])
         queued = await store.read_labels("cluster-test", 10, 10)
+        assert len(queued) == 1
         await store.ack_labels([entry_id for entry_id, *_ in queued])
         await store.save_snapshot(b"snapshot-bytes", 4)
         assert await store.snapshot_version() == 4
         assert await store.load_snapshot() == b"snapshot-bytes"
         await store.append_shadow("evt-1", 1.0, 0.5, "review", "allow")
         assert len(await store.read_shadow()) == 1
-        assert len(queued) == 1
     finally:
         await store.close()
     return scores, stats, profiles
 
 
 def _events(scenario: Any, n: int) -> list[Any]:
-    from service.replay import event_at
-
     return [event_at(scenario.events, i) for i in range(0, len(scenario.events), 7)][:n]
 
 

@@ -150,9 +150,7 @@ def _raw_values(parity: Parity) -> set[bytes]:
 
 def test_no_raw_identifier_at_rest(parity: Parity) -> None:
     """Privacy: keys and values hold digests, numbers and packed records only (DESIGN tenet 7)."""
-    blob = b"\x00".join(
-        b"\x00".join([key, *parts]) for key, (_, _, parts) in parity.dump.items()
-    )
+    blob = b"\x00".join(b"\x00".join([key, *parts]) for key, (_, _, parts) in parity.dump.items())
     # Every e-mail of the invented world is under a reserved name (RFC 2606, RFC 6761).
     assert b".example" not in blob
     assert b".test" not in blob
@@ -170,13 +168,16 @@ def test_every_key_has_a_lifetime_or_a_trim(parity: Parity) -> None:
         name = key.decode()
         if name.startswith("es{") and name[3] in letters and name.endswith("}"):
             seen.add("identifier")
-            assert kind == b"zset" and 0 < pttl <= ttl_ms
+            assert kind == b"zset"
+            assert 0 < pttl <= ttl_ms
         elif name.startswith("i{"):
             seen.add("answer")
-            assert kind == b"string" and 0 < pttl <= answer_ms
+            assert kind == b"string"
+            assert 0 < pttl <= answer_ms
         elif name.startswith("lb{"):
             seen.add("label")
-            assert kind == b"string" and 0 < pttl <= label_ms
+            assert kind == b"string"
+            assert 0 < pttl <= label_ms
         elif kind == b"stream":
             seen.add("stream")  # bounded by trimming (MINID / MAXLEN), tested in test_redis_store
             assert name.startswith(("l{", "m{mature}")), name

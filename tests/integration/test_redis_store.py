@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import asyncio
 import math
+import socket
 import time
 from collections.abc import Awaitable, Callable
 from typing import Any
@@ -26,7 +27,9 @@ from service.workers.learner import LabelOutcome
 pytestmark = pytest.mark.redis
 
 
-def run(kit: Any, url: str, body: Callable[[RedisStore, Any], Awaitable[Any]], **overrides: Any) -> Any:
+def run(
+    kit: Any, url: str, body: Callable[[RedisStore, Any], Awaitable[Any]], **overrides: Any
+) -> Any:
     """Run ``body(store, settings)`` on a fresh store, closing it afterwards."""
     settings = kit.settings(url, **overrides)
 
@@ -50,7 +53,9 @@ def zsets(url: str) -> dict[bytes, dict[bytes, float]]:
         }
 
 
-def assert_same_zsets(got: dict[bytes, dict[bytes, float]], want: dict[bytes, dict[bytes, float]]) -> None:
+def assert_same_zsets(
+    got: dict[bytes, dict[bytes, float]], want: dict[bytes, dict[bytes, float]]
+) -> None:
     assert sorted(got) == sorted(want)
     for key, members in want.items():
         assert sorted(got[key]) == sorted(members), key
@@ -112,10 +117,12 @@ def test_concurrent_duplicate_is_in_flight(kit: Any, redis_url: str) -> None:
         engine = kit.engine(store, settings)
         plan = engine.planner.plan(e)
         begun = await store.begin(plan, read=True)  # the first request, not committed yet
-        assert begun.duplicate is None and begun.profiles == [None, None]
+        assert begun.duplicate is None
+        assert begun.profiles == [None, None]
         with pytest.raises(InFlight):
             await engine.score(e)
-        for (kind, digest), hits, amount in zip(plan.identifiers, plan.hits, plan.amounts):
+        changes = zip(plan.identifiers, plan.hits, plan.amounts, strict=True)
+        for (kind, digest), hits, amount in changes:
             expected = Profile(store.config)
             expected.record(plan.basis, hits, amount)
             assert await store.profile(kind, digest) == expected
@@ -144,7 +151,11 @@ def test_lifetimes_of_identifier_answer_and_label_keys(kit: Any, redis_url: str)
             ttl = c.ttl(identifier_key(kind, d))
             assert settings.scoring_config().ttl_s - 60 < ttl <= settings.scoring_config().ttl_s
         answer_ttl = c.pttl(answer_key(digest))
-        assert settings.idempotency_ttl_s * 1000 - 60_000 < answer_ttl <= settings.idempotency_ttl_s * 1000
+        assert (
+            settings.idempotency_ttl_s * 1000 - 60_000
+            < answer_ttl
+            <= settings.idempotency_ttl_s * 1000
+        )
         assert c.get(answer_key(digest)) not in (None, b"")  # the answer replaced the claim
         label_ttl = c.ttl(label_key(digest))
         assert settings.label_horizon_s - 60 < label_ttl <= settings.label_horizon_s
@@ -193,9 +204,8 @@ def test_label_applied_once_when_delivered_twice(kit: Any, redis_url: str) -> No
         assert outcomes == [LabelOutcome.APPLIED, LabelOutcome.DUPLICATE]
         await store.ack_labels([entry_id for entry_id, *_ in delivered])
         account = await store.profile(*plan.identifiers[0])
-        assert account is not None and sum(account.bad.values()) == pytest.approx(
-            plan.basis.label_factor, rel=1e-15
-        )
+        assert account is not None
+        assert sum(account.bad.values()) == pytest.approx(plan.basis.label_factor, rel=1e-15)
         assert await engine.learner.apply_label(plan.event_digest, False) is LabelOutcome.CHANGED
         account = await store.profile(*plan.identifiers[0])
         assert account is not None
@@ -238,6 +248,30 @@ def test_unacknowledged_labels_are_redelivered_after_a_crash(kit: Any, redis_url
     assert after_ack == []
 
 
+def test_pending_labels_trimmed_meanwhile_are_skipped(kit: Any, redis_url: str) -> None:
+    """A pending label whose entry left the stream (trimmed past the horizon) is acknowledged
+    and skipped; it must not stop the learner from getting the labels after it."""
+    labels = [(bytes([i]) * 8, True, 200.0 + i) for i in range(3)]
+
+    async def crashed(store: RedisStore, settings: Any) -> list[Any]:
+        await store.enqueue_labels(labels[:2])
+        return await store.read_labels("learner-1", 10, 10)
+
+    delivered = run(kit, redis_url, crashed)
+    with redis.Redis.from_url(redis_url) as c:
+        c.xdel("es{labels}", delivered[0][0])  # as trimming would
+
+    async def restarted(store: RedisStore, settings: Any) -> tuple[list[Any], list[Any]]:
+        survivors = await store.read_labels("learner-1", 10, 10)
+        await store.ack_labels([entry_id for entry_id, *_ in survivors])
+        await store.enqueue_labels(labels[2:])
+        return survivors, await store.read_labels("learner-1", 10, 10)
+
+    survivors, new = run(kit, redis_url, restarted)
+    assert survivors == delivered[1:]
+    assert [(d, f, t) for _, d, f, t in new] == labels[2:]
+
+
 # -- maturity queue ------------------------------------------------------------------------------
 
 
@@ -268,7 +302,8 @@ def test_due_returns_oldest_first_and_resumes_after_restart(kit: Any, redis_url:
 
 def test_snapshot_record_erase_and_since(kit: Any, redis_url: str) -> None:
     async def body(store: RedisStore, settings: Any) -> None:
-        assert await store.snapshot_version() is None and await store.load_snapshot() is None
+        assert await store.snapshot_version() is None
+        assert await store.load_snapshot() is None
         await store.save_snapshot(b"\x00model", 7)
         assert (await store.snapshot_version(), await store.load_snapshot()) == (7, b"\x00model")
         engine = kit.engine(store, settings)
@@ -321,22 +356,25 @@ def test_warm_writes_whole_profiles(kit: Any, redis_url: str) -> None:
 def test_shadow_log_reads_back(kit: Any, redis_url: str) -> None:
     async def body(store: RedisStore, settings: Any) -> Any:
         await store.append_shadow("evt-a", 10.0, 0.125, "allow", "review")
-        await store.append_shadow("evt-b", 11.5, 0.875, "deny", "")
+        await store.append_shadow("evt-b", 11.5, 0.875, "deny", None)
         return await store.read_shadow()
 
     table = run(kit, redis_url, body)
     assert table.event_id == ["evt-a", "evt-b"]
-    assert list(table.ts_s) == [10.0, 11.5] and list(table.risk) == [0.125, 0.875]
-    assert table.decision == ["allow", "deny"] and table.reasons == ["", ""]
+    assert list(table.ts_s) == [10.0, 11.5]
+    assert list(table.risk) == [0.125, 0.875]
+    assert table.decision == ["allow", "deny"]
+    assert table.reasons == ["", ""]
     assert table.current_decision == ["review", None]
 
 
 def test_connect_errors_are_store_unavailable(kit: Any) -> None:
-    from tests.conftest import free_port
-
     settings = kit.settings(None)
     with pytest.raises(StoreUnavailable, match="EMBERSCORE_REDIS_URL"):
         asyncio.run(RedisStore.connect(settings, settings.scoring_config()))
-    closed = kit.settings(f"redis://127.0.0.1:{free_port()}/0")
+    with socket.socket() as s:  # a port nobody listens on
+        s.bind(("127.0.0.1", 0))
+        port = s.getsockname()[1]
+    closed = kit.settings(f"redis://127.0.0.1:{port}/0")
     with pytest.raises(StoreUnavailable, match="connection check"):
         asyncio.run(RedisStore.connect(closed, closed.scoring_config()))

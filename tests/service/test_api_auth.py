@@ -9,12 +9,12 @@ from __future__ import annotations
 import logging
 
 import pytest
+from test_api_support import event, running, settings
 
 from service import security
 from service.app import create_app
 from service.config import SettingsError
 from service.security import ApiKeys
-from test_api_support import event, running, settings
 
 pytestmark = pytest.mark.anyio
 
@@ -29,13 +29,19 @@ def anyio_backend() -> str:
 PROTECTED = [
     ("POST", "/v1/score", {"json": event(1)}),
     ("POST", "/v1/events", {"json": {"events": [event(2)]}}),
-    ("POST", "/v1/labels", {"json": {"labels": [{"event_id": "x", "labeled_at": 1e9, "is_fraud": 0}]}}),
+    (
+        "POST",
+        "/v1/labels",
+        {"json": {"labels": [{"event_id": "x", "labeled_at": 1e9, "is_fraud": 0}]}},
+    ),
     ("GET", "/v1/reputation/device/dev-alpha", {}),
     ("DELETE", "/v1/reputation/device/dev-alpha", {}),
 ]
 
 
-@pytest.mark.parametrize(("method", "path", "extra"), PROTECTED, ids=[p[1] + p[0] for p in PROTECTED])
+@pytest.mark.parametrize(
+    ("method", "path", "extra"), PROTECTED, ids=[p[1] + p[0] for p in PROTECTED]
+)
 @pytest.mark.parametrize("key", [None, "key-three-invented", "key-one", ""])
 async def test_missing_or_wrong_key_is_a_bare_401(
     method: str, path: str, extra: dict[str, object], key: str | None
@@ -74,7 +80,9 @@ async def test_development_mode_without_keys_needs_none_and_says_so(
 
 def test_production_refuses_to_start_without_keys_secret_or_redis() -> None:
     with pytest.raises(SettingsError) as caught:
-        create_app(settings(mode="production", hash_secret="emberscore-development-secret-do-not-use"))
+        create_app(
+            settings(mode="production", hash_secret="emberscore-development-secret-do-not-use")
+        )
     message = str(caught.value)
     assert "EMBERSCORE_HASH_SECRET" in message
     assert "EMBERSCORE_API_KEYS" in message

@@ -3,9 +3,9 @@
 from __future__ import annotations
 
 import pytest
+from test_api_support import T0, event, inject, running, unavailable
 
 from scoring.config import DAY_S
-from test_api_support import T0, event, inject, running, unavailable
 
 pytestmark = pytest.mark.anyio
 

@@ -76,7 +76,9 @@ def test_healthchecks_and_start_order(compose: dict[str, Any]) -> None:
 
 def test_dockerfile_runs_serve_unprivileged() -> None:
     text = (ROOT / "Dockerfile").read_text()
-    lines = [line.strip() for line in text.splitlines() if line.strip() and not line.startswith("#")]
+    lines = [
+        line.strip() for line in text.splitlines() if line.strip() and not line.startswith("#")
+    ]
     assert lines[0].startswith("FROM python:3.11")
     cmd = [line for line in lines if line.startswith("CMD ")][-1]  # not the HEALTHCHECK one
     assert json.loads(cmd.removeprefix("CMD "))[:2] == ["emberscore", "serve"]

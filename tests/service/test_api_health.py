@@ -10,8 +10,7 @@ import asyncio
 
 import pytest
 from prometheus_client.parser import text_string_to_metric_families
-
-from test_api_support import event, inject, running, stall, unavailable
+from test_api_support import event, inject, running, settings, stall, unavailable
 
 pytestmark = pytest.mark.anyio
 
@@ -92,3 +91,12 @@ async def test_openapi_documents_every_route() -> None:
         "/metrics",
     } <= set(spec["paths"])
     assert "X-API-Key" in str(spec["components"]["securitySchemes"])
+
+
+async def test_reference_endpoint_only_when_asked() -> None:
+    async with running() as (client, _):
+        absent = await client.post("/v1/reference", json=event(1))
+    async with running(settings(reference_endpoint=True)) as (client, _):
+        present = await client.post("/v1/reference", json=event(1))
+    assert absent.status_code == 404
+    assert present.status_code == 503  # it needs the Redis store

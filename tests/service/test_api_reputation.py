@@ -18,10 +18,10 @@ import math
 from urllib.parse import quote
 
 import pytest
+from test_api_support import SECRET, T0, event, running
 
 from scoring.config import DAY_S, ScoringConfig
 from scoring.hashing import KeyHasher
-from test_api_support import SECRET, T0, event, running
 
 pytestmark = pytest.mark.anyio
 
@@ -37,7 +37,13 @@ def anyio_backend() -> str:
 
 def _events() -> list[dict[str, object]]:
     return [
-        event(0, ts=t, event_id=f"ev-{i}", account_id=f"acct-{i}", email=f"shopper{i}@quillpost.example")
+        event(
+            0,
+            ts=t,
+            event_id=f"ev-{i}",
+            account_id=f"acct-{i}",
+            email=f"shopper{i}@quillpost.example",
+        )
         for i, t in enumerate(TIMES)
     ]
 
@@ -66,13 +72,17 @@ async def test_device_statistics_match_their_definitions() -> None:
         expected = math.fsum(2.0 ** (-(t - ti) / h) for ti in TIMES)
         assert stats["events"][label] == pytest.approx(expected, abs=1e-6)
     m = CFG.fanout_buckets
-    buckets = {int.from_bytes(HASHER.digest("account", f"acct-{i}")[4:8], "big") % m for i in range(3)}
+    buckets = {
+        int.from_bytes(HASHER.digest("account", f"acct-{i}")[4:8], "big") % m for i in range(3)
+    }
     n = -m * math.log(1 - len(buckets) / m)
     r = n / m
     for window in ("1d", "30d"):
         assert stats["fanout"]["account"][window] == pytest.approx(n, abs=1e-3)
         error = math.sqrt(m * (math.exp(r) - r - 1)) / n
-        assert stats["fanout"]["account"][f"{window}_relative_error"] == pytest.approx(error, abs=1e-3)
+        assert stats["fanout"]["account"][f"{window}_relative_error"] == pytest.approx(
+            error, abs=1e-3
+        )
     assert stats["labels"]["fraud"] == 0.0
     n30 = math.fsum(2.0 ** (-(t - ti) / CFG.label_half_life_s) for ti in TIMES)
     no_labels = CFG.prior_alpha / (CFG.prior_alpha + CFG.prior_beta + n30)
@@ -97,7 +107,11 @@ async def test_bad_rate_after_a_fraud_label() -> None:
 # (kind, raw forms that must reach the same key, canonical value)
 FORMS = [
     ("account", ["acct-0", "  acct-0 "], "acct-0"),
-    ("email", ["shopper0@quillpost.example", " SHOPPER0@QuillPost.Example "], "shopper0@quillpost.example"),
+    (
+        "email",
+        ["shopper0@quillpost.example", " SHOPPER0@QuillPost.Example "],
+        "shopper0@quillpost.example",
+    ),
     ("email_domain", ["quillpost.example", "Other@QUILLPOST.example"], "quillpost.example"),
     ("ip", ["11.22.33.44", "11.22.33.44:8443", "::ffff:11.22.33.44"], "11.22.33.44"),
     ("ip_net", ["11.22.33.0/24", "11.22.33.200"], "11.22.33.0/24"),
@@ -125,7 +139,9 @@ async def test_unknown_and_unusable_values() -> None:
         garbage = await client.get(_url("ip", "not-an-address"))
         other_net = await client.get(_url("ip_net", "11.22.0.0/16"))
     assert unseen.status_code == 404
-    assert unseen.json() == {"detail": "no statistics for this device: never seen, expired or erased"}
+    assert unseen.json() == {
+        "detail": "no statistics for this device: never seen, expired or erased"
+    }
     assert kind.status_code == 422
     assert kind.json()["detail"][0]["field"] == "kind"
     assert garbage.json()["detail"] == [

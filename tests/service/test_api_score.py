@@ -10,13 +10,6 @@ import asyncio
 
 import disposable_email_domains
 import pytest
-
-from scoring.event import Event
-from scoring.fusion import Fusion
-from scoring.hashing import KeyHasher
-from service.engine import Engine
-from service.stores.memory import MemoryStore
-from service.workers.learner import Learner
 from test_api_support import (
     event,
     inject,
@@ -26,6 +19,13 @@ from test_api_support import (
     unavailable,
     wait_for,
 )
+
+from scoring.event import Event
+from scoring.fusion import Fusion
+from scoring.hashing import KeyHasher
+from service.engine import Engine
+from service.stores.memory import MemoryStore
+from service.workers.learner import Learner
 
 pytestmark = pytest.mark.anyio
 
@@ -96,7 +96,8 @@ async def test_retry_returns_the_first_answer_marked_duplicate() -> None:
         # Same event id, other content: still the first answer (idempotent on event_id).
         again = (await client.post("/v1/score", json=event(1, device_id="dev-other"))).json()
         count = (await client.get("/v1/reputation/device/dev-alpha")).json()["events"]["1h"]
-    assert first["duplicate"] is False and again["duplicate"] is True
+    assert first["duplicate"] is False
+    assert again["duplicate"] is True
     assert {k: v for k, v in again.items() if k != "duplicate"} == {
         k: v for k, v in first.items() if k != "duplicate"
     }
@@ -114,7 +115,8 @@ async def test_concurrent_duplicate_is_409_with_a_clear_message() -> None:
         done = await first
     assert second.status_code == 409
     assert "being scored by another request" in second.json()["detail"]
-    assert done.status_code == 200 and done.json()["duplicate"] is False
+    assert done.status_code == 200
+    assert done.json()["duplicate"] is False
 
 
 async def test_fail_open_answers_from_the_event_alone() -> None:
@@ -126,7 +128,8 @@ async def test_fail_open_answers_from_the_event_alone() -> None:
         metrics = (await client.get("/metrics")).text
     answer = reply.json()
     assert reply.status_code == 200
-    assert answer["state_available"] is False and answer["duplicate"] is False
+    assert answer["state_available"] is False
+    assert answer["duplicate"] is False
     assert "email.disposable" in answer["reason_codes"]
     assert "append_shadow" not in faulty.calls  # no shadow line for an answer without state
     assert "emberscore_fail_open_answers_total 1.0" in metrics
@@ -139,7 +142,8 @@ async def test_fail_open_when_the_store_is_slower_than_the_budget() -> None:
         inject(app, {"begin": stall(10.0)})
         answer = await asyncio.wait_for(client.post("/v1/score", json=event(4)), 5.0)
         metrics = (await client.get("/metrics")).text
-    assert answer.status_code == 200 and answer.json()["state_available"] is False
+    assert answer.status_code == 200
+    assert answer.json()["state_available"] is False
     assert 'emberscore_store_errors_total{cause="timeout",operation="score"} 1.0' in metrics
 
 

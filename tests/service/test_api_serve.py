@@ -19,11 +19,12 @@ from urllib.parse import quote
 
 import httpx
 import pytest
+from test_api_support import SECRET, event, inject, running, unavailable
 
 from service.cli import main
 from service.config import Settings
+from service.metrics import Metrics
 from service.workers.serve import prepare_metrics_dir, server_options
-from test_api_support import SECRET, event, inject, running, unavailable
 
 pytestmark = pytest.mark.anyio
 ROOT = Path(__file__).parents[2]
@@ -53,7 +54,12 @@ async def _every_kind_of_request(client: httpx.AsyncClient) -> None:
     await client.post("/v1/events", json={"events": [event(2, **RAW)]})
     labels = [{"event_id": "ev-1", "labeled_at": 4e9, "is_fraud": True}]
     await client.post("/v1/labels", json={"labels": labels})
-    for kind, field in (("email", "email"), ("phone", "phone"), ("ip", "ip"), ("device", "device_id")):
+    for kind, field in (
+        ("email", "email"),
+        ("phone", "phone"),
+        ("ip", "ip"),
+        ("device", "device_id"),
+    ):
         await client.get(f"/v1/reputation/{kind}/{quote(RAW[field], safe='')}")
     await client.delete(f"/v1/reputation/email/{quote(RAW['email'], safe='')}")
     await client.get(f"/v1/reputation/ip/{quote(RAW['email'], safe='')}")  # refused: not an ip
@@ -174,4 +180,17 @@ def test_metrics_folder_is_emptied_and_shared(
     assert list(folder.iterdir()) == []
     assert os.environ["PROMETHEUS_MULTIPROC_DIR"] == str(folder)
     assert os.environ["EMBERSCORE_METRICS_DIR"] == str(folder)
-    assert prepare_metrics_dir(Settings(_env_file=None), workers=1) is None  # type: ignore[call-arg]
+    fresh = Settings(_env_file=None, metrics_dir=None)  # type: ignore[call-arg]
+    made = prepare_metrics_dir(fresh, workers=3)
+    assert made is not None
+    assert os.environ["PROMETHEUS_MULTIPROC_DIR"] == str(made)
+    made.rmdir()
+
+
+def test_a_metrics_folder_without_multiprocess_values_is_ignored(tmp_path: Path) -> None:
+    """In a process where prometheus_client started without PROMETHEUS_MULTIPROC_DIR (as this
+    test process did), the folder is ignored rather than read empty."""
+    metrics = Metrics(str(tmp_path))
+    metrics.decisions.labels("deny").inc()
+    assert metrics.multiprocess_dir is None
+    assert b'emberscore_decisions_total{decision="deny"} 1.0' in metrics.exposition()

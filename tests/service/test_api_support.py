@@ -79,7 +79,9 @@ def stall(seconds: float) -> Callable[[], Awaitable[None]]:
     return wait
 
 
-def wait_for(gate: asyncio.Event, entered: asyncio.Event | None = None) -> Callable[[], Awaitable[None]]:
+def wait_for(
+    gate: asyncio.Event, entered: asyncio.Event | None = None
+) -> Callable[[], Awaitable[None]]:
     async def wait() -> None:
         if entered is not None:
             entered.set()

@@ -14,9 +14,9 @@ from typing import Any
 
 import pyarrow as pa
 import pytest
+from test_api_support import event, running, settings
 
 from service.files_times import NO_ZONE, parse_times
-from test_api_support import event, running, settings
 
 pytestmark = pytest.mark.anyio
 
@@ -122,11 +122,18 @@ async def test_oversize_batch_is_422_naming_the_field() -> None:
         events = await client.post("/v1/events", json={"events": [event(n) for n in range(4)]})
         labels = await client.post(
             "/v1/labels",
-            json={"labels": [{"event_id": f"e{n}", "labeled_at": 1e9, "is_fraud": 1} for n in range(4)]},
+            json={
+                "labels": [
+                    {"event_id": f"e{n}", "labeled_at": 1e9, "is_fraud": 1} for n in range(4)
+                ]
+            },
         )
     assert events.status_code == 422
     assert events.json()["detail"] == [
-        {"field": "events", "reason": "4 items is more than the 3 allowed per request: split the batch"}
+        {
+            "field": "events",
+            "reason": "4 items is more than the 3 allowed per request: split the batch",
+        }
     ]
     assert labels.json()["detail"][0]["field"] == "labels"
 

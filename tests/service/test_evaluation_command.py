@@ -212,7 +212,9 @@ def test_segment_catch_rates_at_one_percent(tmp_path: Path) -> None:
         assert row.fraud == members.sum()
         if members.any():
             assert row.ours == pytest.approx((top & members).sum() / members.sum())
-    assert "catch rate of labelled fraud per segment" in format_table(result)
+        in_segment = np.array([n == row.segment for n in names])
+        assert row.ours_alerted == pytest.approx((top & in_segment).sum() / in_segment.sum())
+    assert "share of the segment's events alerted" in format_table(result)
 
 
 @pytest.mark.parametrize(

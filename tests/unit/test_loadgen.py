@@ -22,8 +22,10 @@ import numpy as np
 import pytest
 import uvicorn
 from fastapi import FastAPI, Request, Response
+from fastapi.testclient import TestClient
 from hypothesis import given
 from hypothesis import strategies as st
+from pydantic import SecretStr
 from redis import asyncio as aioredis
 
 from loadtest.load import (
@@ -43,8 +45,10 @@ from loadtest.load_http import body_prefixes, full_request, parse_target, scenar
 from scoring.config import ScoringConfig
 from scoring.event import EventPlan, Planner
 from scoring.hashing import KeyHasher
+from service.app import create_app
 from service.config import Settings
 from service.replay import event_at
+from service.routes import reference
 from service.routes.reference import (
     SCRATCH_TTL_S,
     reference_plan,
@@ -428,3 +432,35 @@ def test_reference_round_trip_sends_the_commands_of_a_scored_event(redis_url: st
     name, the reference round trip makes as many calls as `RedisStore.begin` for the same
     event, and its writes land on scratch keys that expire."""
     asyncio.run(_compare_round_trips(redis_url, _scenario_plans(40)))
+
+
+def _app_with_reference(settings: Settings) -> FastAPI:
+    """The service app, with the reference router added if the app does not include it yet."""
+    app = create_app(settings)
+    if not any(getattr(r, "path", "") == "/v1/reference" for r in app.routes):
+        app.include_router(reference.router)
+    return app
+
+
+def _reference_body(event_id: str) -> dict[str, Any]:
+    body = dict(scenario_events(1_000, seed=2)[0], account_id="acc_ref", email="r@example.test")
+    return {"event_id": event_id, "ts": time.time(), **body}
+
+
+@pytest.mark.redis
+def test_reference_route_parses_like_score_and_answers(redis_url: str) -> None:
+    settings = Settings(redis_url=redis_url, hash_secret=SecretStr("reference-route-test"))
+    with TestClient(_app_with_reference(settings)) as client:
+        answer = client.post("/v1/reference", json=_reference_body("ref-1"))
+        assert answer.status_code == 200
+        assert answer.json()["identifiers"] >= 3
+        assert answer.json()["commands"] > answer.json()["identifiers"]
+        refused = client.post("/v1/reference", json={"event_id": "ref-2", "ts": "yesterday"})
+        assert refused.status_code == 422  # the same strict model as /v1/score
+
+
+def test_reference_route_needs_redis() -> None:
+    with TestClient(_app_with_reference(Settings(redis_url=None))) as client:
+        answer = client.post("/v1/reference", json=_reference_body("ref-3"))
+    assert answer.status_code == 503
+    assert "Redis" in answer.json()["detail"]

@@ -1,0 +1,419 @@
+"""The batch path in stages, and the identifier state a replayed history ends with.
+
+`scoring.batch.replay_columns` runs a whole history in one call. A long backfill wants to stop and
+resume, so this module offers the same work as three stages whose outputs can be kept between
+runs: `prepare_replay` (label schedule, label reads and the feature matrix; nothing here depends
+on the model), `learn_versions` (the learner's order of learning, every published model state)
+and `score_range` (any slice of rows). Run back to back they give exactly what `replay_columns`
+gives; they only call the batch path's own functions, so there is no second copy of the maths.
+
+`final_profiles` gives the `Profile` of every identifier still alive at the end of the history,
+as the embedded store holds it after the per-event replay of the same stream, so that a new
+deployment can start from history (`emberscore backfill --warm`).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from collections.abc import Callable, Iterator, Sequence
+from dataclasses import dataclass
+
+import numpy as np
+
+from scoring.batch import (
+    Application,
+    LabelColumns,
+    _label_reads,
+    _Versions,
+    run_learning,
+    schedule_labels,
+    score_rows,
+)
+from scoring.batch_features import (
+    BatchFeatureReader,
+    KindIndex,
+    epoch_factors,
+    index_kind,
+    segmented_cumsum,
+)
+from scoring.batch_plan import PlannedColumns
+from scoring.config import KIND_LETTERS, ScoringConfig
+from scoring.fusion import Fusion, OnlineModel
+from scoring.profile import Profile, TimeBasis, _add
+
+__all__ = [
+    "LearnedVersions",
+    "PreparedReplay",
+    "final_profiles",
+    "learn_versions",
+    "prepare_replay",
+    "score_range",
+]
+
+
+def _example_columns() -> tuple[PlannedColumns, ScoringConfig]:
+    """Three events of one account (two of them with a device), planned: for the examples."""
+    from scoring.batch_plan import ColumnPlanner
+    from scoring.hashing import KeyHasher
+
+    config = ScoringConfig()
+    planner = ColumnPlanner(config, KeyHasher(b"example-secret"))
+    fields: dict[str, Sequence[str | None]] = {
+        "account_id": ["acct-1", "acct-1", "acct-1"],
+        "device_id": ["dev-1", None, "dev-1"],
+        "ip": [None] * 3,
+        "phone": [None] * 3,
+        "email": [None] * 3,
+    }
+    cols = planner.plan(
+        ["e1", "e2", "e3"],
+        np.array([1_790_000_000.0, 1_790_000_600.0, 1_790_003_600.0]),
+        ["signup", "login", "checkout"],
+        np.array([np.nan, np.nan, 40.0]),
+        fields,
+    )
+    return cols, config
+
+
+# --- stages ------------------------------------------------------------------------------------
+
+
+@dataclass
+class PreparedReplay:
+    """What learning and scoring need and the model does not change.
+
+    ``x`` is the feature matrix (rows in input order), ``applications`` the labels that apply and
+    where, ``outcomes`` the count of each label outcome, ``labels_pending`` the labels that
+    arrive after the last event.
+    """
+
+    x: np.ndarray
+    applications: list[Application]
+    outcomes: dict[str, int]
+    labels_pending: int
+
+
+def prepare_replay(
+    cols: PlannedColumns,
+    labels: LabelColumns | None,
+    config: ScoringConfig,
+    *,
+    record_ttl_s: float,
+    observed_since_s: float | None = None,
+) -> PreparedReplay:
+    """Label schedule, label reads and features of a time-sorted history (`replay_columns`'s
+    first half).
+
+    >>> cols, config = _example_columns()
+    >>> prepared = prepare_replay(cols, None, config, record_ttl_s=60 * 86400.0)
+    >>> prepared.x.shape[0], prepared.applications, prepared.labels_pending
+    (3, [], 0)
+    """
+    ts = cols.ts_s
+    if len(ts) > 1 and np.any(np.diff(ts) < 0):
+        raise ValueError("events must be sorted by time for a point-in-time replay")
+    since = float(ts[0]) if observed_since_s is None and len(ts) else observed_since_s
+    indexes = {kind: index_kind(cols.ids[kind], ts, config.ttl_s) for kind in config.kinds}
+    applications: list[Application] = []
+    outcomes: dict[str, int] = {}
+    pending = 0
+    if labels is not None and len(labels.event_row):
+        applications, outcomes, pending = schedule_labels(ts, labels, record_ttl_s)
+    bad = {
+        kind: _label_reads(cols, indexes[kind], cols.ids[kind], applications, config)
+        for kind in config.label_kinds
+    }
+    x = BatchFeatureReader(config).read(cols, indexes, bad, since if since is not None else 0.0)
+    return PreparedReplay(x, applications, outcomes, pending)
+
+
+@dataclass
+class LearnedVersions:
+    """Every model state published during the history, and which one scored each row.
+
+    `to_arrays` and `from_arrays` turn it into plain numeric arrays and back, so that a caller
+    can keep it between runs without pickling anything.
+    """
+
+    versions: _Versions
+    version_of: np.ndarray
+
+    @property
+    def published(self) -> int:
+        """Model versions published during the history (the starting state not counted)."""
+        return len(self.versions.number) - 1
+
+    def to_arrays(self) -> dict[str, np.ndarray]:
+        """Plain arrays: ``version_of`` and one ``versions.<field>`` per published-state field.
+
+        >>> learned = LearnedVersions(_Versions(), np.zeros(2, dtype=np.int64))
+        >>> learned.versions.add(Fusion(ScoringConfig()))
+        >>> back = LearnedVersions.from_arrays(learned.to_arrays())
+        >>> back.published, back.to_arrays().keys() == learned.to_arrays().keys()
+        (0, True)
+        """
+        out = {"version_of": np.asarray(self.version_of)}
+        for f in dataclasses.fields(self.versions):
+            values = getattr(self.versions, f.name)
+            out[f"versions.{f.name}"] = np.array(values)
+        return out
+
+    @classmethod
+    def from_arrays(cls, arrays: dict[str, np.ndarray]) -> LearnedVersions:
+        """Rebuild from `to_arrays` output (rows of 2-D arrays, Python numbers of 1-D ones)."""
+        values: dict[str, list[object]] = {}
+        for f in dataclasses.fields(_Versions):
+            stacked = arrays[f"versions.{f.name}"]
+            values[f.name] = list(stacked) if stacked.ndim == 2 else stacked.tolist()
+        return cls(_Versions(**values), np.asarray(arrays["version_of"], dtype=np.int64))  # type: ignore[arg-type]
+
+
+def learn_versions(
+    prepared: PreparedReplay,
+    cols: PlannedColumns,
+    fusion: Fusion,
+    model: OnlineModel | None,
+    *,
+    record_ttl_s: float,
+) -> LearnedVersions:
+    """Learn in the per-event learner's order (`run_learning`); None freezes ``fusion``'s model.
+
+    ``fusion`` ends on the last published snapshot, as in `replay_columns`.
+
+    >>> cols, config = _example_columns()
+    >>> prepared = prepare_replay(cols, None, config, record_ttl_s=60 * 86400.0)
+    >>> learn_versions(prepared, cols, Fusion(config), None, record_ttl_s=60 * 86400.0).published
+    0
+    """
+    versions, version_of = run_learning(
+        prepared.x, cols, prepared.applications, fusion, model, record_ttl_s
+    )
+    return LearnedVersions(versions, version_of)
+
+
+def score_range(
+    prepared: PreparedReplay,
+    learned: LearnedVersions,
+    fusion: Fusion,
+    start: int,
+    stop: int,
+    progress: Callable[[int], None] | None = None,
+) -> tuple[np.ndarray, list[str], list[str]]:
+    """Risk, decision and reasons of rows ``start`` to ``stop`` (each row on its own).
+
+    ``progress`` is called with the number of rows of this range scored so far.
+
+    >>> cols, config = _example_columns()
+    >>> fusion = Fusion(config)
+    >>> prepared = prepare_replay(cols, None, config, record_ttl_s=60 * 86400.0)
+    >>> learned = learn_versions(prepared, cols, fusion, None, record_ttl_s=60 * 86400.0)
+    >>> risk, decisions, reasons = score_range(prepared, learned, fusion, 1, 3)
+    >>> len(risk), decisions
+    (2, ['allow', 'allow'])
+    """
+    x = prepared.x[start:stop]
+    version_of = learned.version_of[start:stop]
+    return score_rows(x, learned.versions, version_of, fusion, progress=progress)
+
+
+# --- final identifier state --------------------------------------------------------------------
+
+
+def final_profiles(
+    cols: PlannedColumns,
+    applications: Sequence[Application],
+    config: ScoringConfig,
+    *,
+    now_s: float | None = None,
+) -> Iterator[tuple[str, bytes, Profile]]:
+    """Every identifier's `Profile` at the end of a time-sorted history, as the embedded store
+    holds it after replaying the same events and label applications.
+
+    Only identifiers alive at ``now_s`` (default: the last event's time) are given: those whose
+    last event is at most ``config.ttl_s`` before it. A profile holds the events of its
+    identifier's last lifetime segment and the labels applied to it (`schedule_labels` gives
+    ``applications``), added up in the order the per-event path adds them.
+
+    >>> cols, config = _example_columns()
+    >>> found = {kind: p for kind, _, p in final_profiles(cols, [], config)}
+    >>> sorted(found)
+    ['account', 'device']
+    >>> a = found["account"]
+    >>> a.first_s, a.last_s, round(a.count(0, 1_790_003_600.0, config), 6)  # 1-hour counter
+    (1790000000, 1790003600, 2.061231)
+    >>> round(2 ** -1 + 2 ** (-3000 / 3600) + 1, 6)  # events 3600 s, 3000 s and 0 s before
+    2.061231
+    >>> sorted(a.fanout["d"].values()), len(a.amount)
+    ([1790003600], 1)
+    """
+    if len(cols) == 0:
+        return
+    now = float(cols.ts_s[-1]) if now_s is None else float(now_s)
+    for kind in config.kinds:
+        yield from _kind_profiles(cols, kind, applications, config, now)
+
+
+@dataclass
+class _Finals:
+    """The last lifetime segment of each live identifier of one kind (positions in index order)."""
+
+    codes: list[int]  # identifier code per profile
+    start: np.ndarray  # first position of the segment
+    stop: np.ndarray  # one past its last position
+    profile_at: np.ndarray  # per position in index order: profile number, -1 if not final/live
+
+
+def _finals(
+    index: KindIndex, ids: np.ndarray, ts_s: np.ndarray, ttl_s: float, now: float
+) -> _Finals:
+    order = index.order
+    sorted_ids = ids[order]
+    last = np.flatnonzero(np.append(sorted_ids[1:] != sorted_ids[:-1], True))
+    seg_first = np.flatnonzero(index.starts)
+    start = seg_first[index.segment[last]]
+    last_s = np.trunc(ts_s[order[last]])  # the store keeps whole seconds, as int() does
+    live = now - last_s <= ttl_s  # the store drops a record once ``now - last_s > ttl``
+    start, stop = start[live], last[live] + 1
+    profile_at = np.full(len(order), -1, dtype=np.int64)
+    spans = stop - start
+    profile_at[np.repeat(start, spans) + _offsets(spans)] = np.repeat(np.arange(len(start)), spans)
+    return _Finals(sorted_ids[start].tolist(), start, stop, profile_at)
+
+
+def _offsets(lengths: np.ndarray) -> np.ndarray:
+    """0, 1, ..., length-1 for each length, concatenated."""
+    total = int(lengths.sum())
+    firsts = np.repeat(np.cumsum(lengths) - lengths, lengths)
+    offsets: np.ndarray = np.arange(total) - firsts
+    return offsets
+
+
+def _kind_profiles(
+    cols: PlannedColumns,
+    kind: str,
+    applications: Sequence[Application],
+    config: ScoringConfig,
+    now: float,
+) -> Iterator[tuple[str, bytes, Profile]]:
+    ids = cols.ids[kind]
+    index = index_kind(ids, cols.ts_s, config.ttl_s)
+    if len(index.order) == 0:
+        return
+    finals = _finals(index, ids, cols.ts_s, config.ttl_s, now)
+    profiles = [Profile(config) for _ in finals.codes]
+    t_whole = np.trunc(cols.ts_s[index.order]).astype(np.int64)
+    for p, first, last in zip(
+        profiles, t_whole[finals.start].tolist(), t_whole[finals.stop - 1].tolist(), strict=True
+    ):
+        p.first_s, p.last_s = first, last
+    _add_counts(profiles, index, finals, cols, config)
+    if kind == config.amount_kind:
+        _add_amounts(profiles, index, finals, cols, config)
+    for target in config.targets_of(kind):
+        _add_fanout(profiles, index, finals, cols.buckets[target], t_whole, KIND_LETTERS[target])
+    if kind in config.label_kinds:  # a learning record carries these kinds only
+        _add_labels(profiles, kind, index, finals, cols, applications, config)
+    digests = cols.digests[kind]
+    for code, profile in zip(finals.codes, profiles, strict=True):
+        yield kind, digests[code], profile
+
+
+def _fold_runs(
+    sums: list[dict[int, float]],
+    owner: np.ndarray,
+    epochs: np.ndarray,
+    totals: np.ndarray,
+) -> None:
+    """Add each run's total to its owner's forward-decay sums, in order, as events add them."""
+    for who, epoch, total in zip(owner.tolist(), epochs.tolist(), totals.tolist(), strict=True):
+        if who >= 0:
+            _add(sums[who], epoch, total)
+
+
+def _runs_of(
+    values: np.ndarray, epoch: np.ndarray, owner: np.ndarray
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Owner, epoch and sequential total of each run of equal (owner, epoch) in position order."""
+    starts = np.ones(len(values), dtype=bool)
+    starts[1:] = (owner[1:] != owner[:-1]) | (epoch[1:] != epoch[:-1])
+    inclusive = segmented_cumsum(values, starts)  # sequential from zero, as += does
+    ends = np.append(np.flatnonzero(starts)[1:], len(values)) - 1
+    return owner[ends], epoch[ends], inclusive[ends]
+
+
+def _add_counts(
+    profiles: list[Profile],
+    index: KindIndex,
+    finals: _Finals,
+    cols: PlannedColumns,
+    config: ScoringConfig,
+) -> None:
+    ts = cols.ts_s[index.order]
+    for j, half_life_s in enumerate(config.half_lives_s):
+        epoch, factor = epoch_factors(ts, half_life_s)
+        owner, run_epoch, totals = _runs_of(factor, epoch, finals.profile_at)
+        _fold_runs([p.counts[j] for p in profiles], owner, run_epoch, totals)
+
+
+def _add_amounts(
+    profiles: list[Profile],
+    index: KindIndex,
+    finals: _Finals,
+    cols: PlannedColumns,
+    config: ScoringConfig,
+) -> None:
+    """Spend: amounts above zero, against the longest counter's landmark (`Profile.record`)."""
+    amount = cols.amount[index.order]
+    paid = np.flatnonzero((np.nan_to_num(amount, nan=0.0) > 0.0) & (finals.profile_at >= 0))
+    if len(paid) == 0:
+        return
+    epoch, factor = epoch_factors(cols.ts_s[index.order][paid], config.half_lives_s[-1])
+    owner, run_epoch, totals = _runs_of(amount[paid] * factor, epoch, finals.profile_at[paid])
+    _fold_runs([p.amount for p in profiles], owner, run_epoch, totals)
+
+
+def _add_fanout(
+    profiles: list[Profile],
+    index: KindIndex,
+    finals: _Finals,
+    target_buckets: np.ndarray,
+    t_whole: np.ndarray,
+    letter: str,
+) -> None:
+    """Each bucket's last hit (whole seconds) in the segment: the maximum, as times are sorted."""
+    bucket = target_buckets[index.order]
+    hits = np.flatnonzero((bucket >= 0) & (finals.profile_at >= 0))
+    if len(hits) == 0:
+        return
+    key = finals.profile_at[hits] * (int(bucket.max()) + 1) + bucket[hits]
+    by_key = np.lexsort((hits, key))
+    last = np.append(key[by_key][1:] != key[by_key][:-1], True)
+    chosen = hits[by_key][last]
+    owners = finals.profile_at[chosen].tolist()
+    for who, b, t in zip(owners, bucket[chosen].tolist(), t_whole[chosen].tolist(), strict=True):
+        profiles[who].fanout.setdefault(letter, {})[b] = t
+
+
+def _add_labels(
+    profiles: list[Profile],
+    kind: str,
+    index: KindIndex,
+    finals: _Finals,
+    cols: PlannedColumns,
+    applications: Sequence[Application],
+    config: ScoringConfig,
+) -> None:
+    """Labels reach the record an identifier had when they were applied; only those applied after
+    its last segment began reach the final profile (`Learner.apply_label`'s two additions)."""
+    ids = cols.ids[kind]
+    first_row = index.order[finals.start]
+    profile_of = dict(zip(finals.codes, range(len(finals.codes)), strict=True))
+    for a in applications:
+        code = int(ids[a.row])
+        who = profile_of.get(code, -1) if code >= 0 else -1
+        if who < 0 or first_row[who] >= a.position:
+            continue
+        basis = TimeBasis.at(float(round(cols.ts_s[a.row])), config)  # a record keeps seconds
+        if a.previous is not None:
+            profiles[who].add_label(basis, a.previous, -1.0)
+        profiles[who].add_label(basis, a.is_fraud, 1.0)
