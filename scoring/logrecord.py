@@ -16,12 +16,16 @@ from __future__ import annotations
 from collections.abc import Sequence
 from dataclasses import dataclass
 
+import zlib
+
 import msgpack
 import numpy as np
 
 from scoring.config import ScoringConfig
 from scoring.features import BINARY, LOG, SIGNED, FeatureLayout
 from scoring.hashing import DIGEST_BYTES
+from scoring.prior import Prior
+from scoring.reasons import display_round
 
 STEP = 16.0
 _DEFAULT_CODE = {LOG: 0, BINARY: 0, SIGNED: 128}
@@ -201,9 +205,7 @@ class RecordCodec:
 class StoredAnswer:
     """The answer given for an event id, kept for idempotent retries.
 
-    >>> a = StoredAnswer(0.125, "allow", (("device.accounts", 7.0),), 4)
-    >>> StoredAnswer.from_bytes(a.to_bytes()) == a
-    True
+    ``reasons`` are (code, quoted number) pairs, ``risk`` the probability of fraud.
     """
 
     risk: float
@@ -211,19 +213,69 @@ class StoredAnswer:
     reasons: tuple[tuple[str, float], ...]
     model_version: int
 
-    def to_bytes(self) -> bytes:
-        body = [self.risk, self.decision, [list(r) for r in self.reasons], self.model_version]
-        return bytes(msgpack.packb(body, use_bin_type=True))
 
-    @classmethod
-    def from_bytes(cls, data: bytes) -> StoredAnswer:
+class AnswerCodec:
+    """Packs `StoredAnswer` into a few dozen bytes for one configuration.
+
+    Retries are rare but every event's answer is kept for the idempotency window, so the stored
+    form is small: the risk in millionths (answers are given to 6 decimals), the decision and
+    each reason code as small indexes, each reason's number on the grid its words show
+    (`reasons.display_round`), and a byte that tells one configuration's code table from
+    another's.
+
+    Examples
+    --------
+    >>> codec = AnswerCodec(ScoringConfig())
+    >>> a = StoredAnswer(0.1234564, "review", (("device.accounts", 7.2), ("amount.vs_usual", 6.04)), 4)
+    >>> data = codec.encode(a)
+    >>> len(data) < 25
+    True
+    >>> codec.decode(data)
+    StoredAnswer(risk=0.123456, decision='review', reasons=(('device.accounts', 7.2), ('amount.vs_usual', 6.0)), model_version=4)
+    """
+
+    def __init__(self, config: ScoringConfig) -> None:
+        codes = list(FeatureLayout.of(config).names)
+        codes += [c for c in Prior(config).codes if c not in codes]  # the prior's reasons
+        self.codes = tuple(codes)
+        self._index = {code: i for i, code in enumerate(self.codes)}
+        self.fingerprint = zlib.crc32("\n".join(self.codes).encode()) & 0xFF
+
+    def encode(self, answer: StoredAnswer) -> bytes:
+        body: list[int] = [
+            self.fingerprint,
+            round(answer.risk * RISK_UNITS),
+            DECISION_CODES.index(answer.decision),
+            answer.model_version,
+        ]
+        for code, value in answer.reasons:
+            scale = _reason_scale(code)
+            body += [self._index[code], round(display_round(code, value) * scale)]
+        return bytes(msgpack.packb(body))
+
+    def decode(self, data: bytes) -> StoredAnswer:
         try:
-            risk, decision, reasons, version = msgpack.unpackb(data)
-            return cls(
-                float(risk),
-                str(decision),
-                tuple((str(c), float(v)) for c, v in reasons),
-                int(version),
+            body = msgpack.unpackb(data)
+            fingerprint, risk, decision, version, *pairs = body
+            if fingerprint != self.fingerprint:
+                raise RecordError("stored under another configuration's reason codes")
+            reasons = []
+            for i in range(0, len(pairs), 2):
+                code = self.codes[pairs[i]]
+                reasons.append((code, pairs[i + 1] / _reason_scale(code)))
+            return StoredAnswer(
+                risk / RISK_UNITS, DECISION_CODES[decision], tuple(reasons), int(version)
             )
-        except (ValueError, TypeError, msgpack.ExtraData) as exc:
+        except (ValueError, TypeError, IndexError, msgpack.ExtraData) as exc:
+            if isinstance(exc, RecordError):
+                raise
             raise RecordError(f"not a stored answer: {exc}") from exc
+
+
+RISK_UNITS = 1_000_000
+"""Answers give the risk to 6 decimals; stored answers keep it in millionths."""
+DECISION_CODES = ("allow", "review", "deny")
+
+
+def _reason_scale(code: str) -> float:
+    return 100.0 if code == "amount.log" else 10.0

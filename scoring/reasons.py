@@ -47,7 +47,7 @@ def _per_stat(kind_words: str, stat: str, value: float) -> str | None:
     if stat == "new":
         return f"{kind_words}: never seen before"
     if stat == "bad":
-        return f"{kind_words}: confirmed fraud at about {math.exp(value):.0f}x the usual rate"
+        return f"{kind_words}: confirmed fraud at about {math.exp(min(value, 30.0)):.0f}x the usual rate"
     if stat == "young_hub":
         return f"{kind_words}: new, yet already used by about {_count(value)} accounts today"
     if stat == "accounts":

@@ -164,7 +164,7 @@ class ScoreOut(BaseModel):
     def of(cls, result: ScoreResult) -> ScoreOut:
         return cls(
             event_id=result.event_id,
-            risk=result.risk,
+            risk=round(result.risk, 6),  # as in scores files; stored answers keep 6 decimals
             decision=cast(Decision, result.decision),
             reasons=list(result.reasons),
             reason_codes=list(result.reason_codes),

@@ -18,14 +18,18 @@ from scoring.event import Event, Planner
 from scoring.features import FeatureReader
 from scoring.fusion import Fusion
 from scoring.hashing import KeyHasher
-from scoring.logrecord import EventRecord, RecordCodec, StoredAnswer
+from scoring.logrecord import AnswerCodec, EventRecord, RecordCodec, RecordError, StoredAnswer
 from scoring.reasons import describe
-from service.stores.base import PENDING, StateStore
+from service.stores.base import PENDING, RECORDED, StateStore
 from service.workers.learner import LabelOutcome, Learner
 
 
 class InFlight(RuntimeError):
     """Another request with the same event id is being scored right now."""
+
+
+class AlreadyRecorded(RuntimeError):
+    """The event id was recorded without scoring; it is not scored afterwards."""
 
 
 @dataclass(frozen=True)
@@ -64,6 +68,7 @@ class Engine:
         self.planner = Planner(config, hasher, default_region)
         self.reader = FeatureReader(config)
         self.codec = RecordCodec(config)
+        self.answers = AnswerCodec(config)
         self.fusion = fusion
         self.learner = learner
         self._sample_below = int(config.negative_sample_rate * 2**32)
@@ -92,7 +97,7 @@ class Engine:
         record = EventRecord(event.ts_s, plan.identifiers, tuple(x), a.risk, a.model_version)
         await self.store.commit(
             plan,
-            answer.to_bytes(),
+            self.answers.encode(answer),
             self.codec.encode(record),
             self._mature_at(plan.event_digest, event.ts_s),
         )
@@ -133,7 +138,7 @@ class Engine:
         if begun.duplicate is not None:
             return False
         record = EventRecord(event.ts_s, plan.identifiers, None, 0.0, 0)
-        await self.store.commit(plan, None, self.codec.encode(record), None)
+        await self.store.commit(plan, RECORDED, self.codec.encode(record), None)
         return True
 
     async def label(self, event_id: str, is_fraud: bool) -> LabelOutcome:
@@ -150,7 +155,17 @@ class Engine:
     def _stored(self, event_id: str, data: bytes) -> ScoreResult:
         if data == PENDING:
             raise InFlight(f"event {event_id!r} is being scored by another request; retry shortly")
-        answer = StoredAnswer.from_bytes(data)
+        if data == RECORDED:
+            raise AlreadyRecorded(
+                f"event {event_id!r} was recorded without scoring (POST /v1/events); "
+                "only new event ids are scored"
+            )
+        try:
+            answer = self.answers.decode(data)
+        except RecordError as exc:
+            raise InFlight(
+                f"event {event_id!r} was answered under another configuration; use a new id"
+            ) from exc
         return ScoreResult(
             event_id,
             answer.risk,

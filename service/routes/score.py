@@ -17,7 +17,7 @@ from fastapi import APIRouter, BackgroundTasks, HTTPException
 
 from scoring.event import Event
 from service.api_models import EventIn, Message, ScoreOut, ValidationProblems
-from service.engine import InFlight, ScoreResult
+from service.engine import AlreadyRecorded, InFlight, ScoreResult
 from service.routes.deps import ApiKey, Runtime, RuntimeDep, store_unavailable
 from service.stores.base import StoreUnavailable
 
@@ -29,7 +29,7 @@ async def _score(runtime: Runtime, event: Event) -> ScoreResult:
     try:
         async with asyncio.timeout(runtime.score_budget_s):
             return await runtime.engine.score(event)
-    except InFlight as exc:
+    except (InFlight, AlreadyRecorded) as exc:
         raise HTTPException(409, str(exc)) from exc
     except (TimeoutError, StoreUnavailable) as exc:
         runtime.metrics.store_error("score", exc)

@@ -23,6 +23,11 @@ from scoring.profile import Profile, TimeBasis
 
 PENDING = b""
 """Stored in place of an answer while the first request for an event id is being scored."""
+RECORDED = b"recorded"
+"""Stored in place of an answer for an event recorded without scoring (`POST /v1/events`)."""
+CLAIM_TTL_S = 30.0
+"""How long a claim lives without its answer: a request that died mid-way frees its event id
+after this, instead of after the whole idempotency window."""
 
 
 class StoreUnavailable(RuntimeError):

@@ -14,7 +14,7 @@ from collections.abc import Sequence
 from scoring.config import ScoringConfig
 from scoring.event import EventPlan
 from scoring.profile import Profile, TimeBasis
-from service.stores.base import PENDING, Begun, Matured
+from service.stores.base import CLAIM_TTL_S, PENDING, Begun, Matured
 
 SWEEP_EVERY = 1 << 16
 
@@ -56,7 +56,7 @@ class MemoryStore:
         held = self.answers.get(plan.event_digest)
         if held is not None and held[1] > t:
             return Begun(duplicate=held[0])
-        self.answers[plan.event_digest] = (PENDING, t + self.idempotency_ttl_s)
+        self.answers[plan.event_digest] = (PENDING, t + CLAIM_TTL_S)
         if not read:
             return Begun()
         ttl = self.config.ttl_s

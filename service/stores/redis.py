@@ -30,7 +30,7 @@ from scoring.event import EventPlan
 from scoring.profile import Profile, TimeBasis
 from service.config import Settings
 from service.stores import redis_streams as streams
-from service.stores.base import PENDING, Begun, Matured, StoreUnavailable
+from service.stores.base import CLAIM_TTL_S, PENDING, Begun, Matured, StoreUnavailable
 from service.stores.redis_client import Client, check_server, guard, make_client
 from service.stores.redis_keys import (
     LABEL_GROUP,
@@ -89,6 +89,7 @@ class RedisStore:
         self.planner = WritePlanner(config)
         self._ttl_s = math.ceil(config.ttl_s)
         self._answer_ttl_ms = math.ceil(settings.idempotency_ttl_s * 1000)
+        self._claim_ttl_ms = math.ceil(min(CLAIM_TTL_S, settings.idempotency_ttl_s) * 1000)
         self._horizon_s = math.ceil(settings.label_horizon_s)
         self._since_s: float | None = None
         self._next_due_s: float | None = None
@@ -119,7 +120,7 @@ class RedisStore:
         async with guard("the event read and write", self.budget_s):
             pipe = self.fast.pipeline(transaction=False)
             pipe.set(
-                answer_key(plan.event_digest), PENDING, nx=True, get=True, px=self._answer_ttl_ms
+                answer_key(plan.event_digest), PENDING, nx=True, get=True, px=self._claim_ttl_ms
             )
             if ask_since:
                 pipe.set(SINCE_KEY, repr(plan.basis.t_s), nx=True, get=True)
@@ -175,8 +176,8 @@ class RedisStore:
         queued = None if mature_at_s is None else encode_maturity(mature_at_s, record)
 
         def write(pipe: Any) -> None:
-            if answer is not None:
-                pipe.set(answer_key(digest), answer, xx=True, keepttl=True)
+            if answer is not None:  # the claim's short life becomes the idempotency window
+                pipe.set(answer_key(digest), answer, xx=True, px=self._answer_ttl_ms)
             pipe.xadd(shard_key, {digest: record}, minid=minid)
             if queued is not None:
                 pipe.xadd(MATURE_KEY, {digest: queued}, minid=minid)

@@ -73,7 +73,7 @@ async def _reference(bodies: list[dict[str, object]]) -> list[tuple[float, str, 
             amount=b.get("amount"),  # type: ignore[arg-type]
         )
         r = await engine.score(ev)
-        out.append((r.risk, r.decision, list(r.reasons)))
+        out.append((round(r.risk, 6), r.decision, list(r.reasons)))  # answers give 6 decimals
     return out
 
 

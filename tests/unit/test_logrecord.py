@@ -17,10 +17,12 @@ from hypothesis import strategies as st
 
 from scoring.config import ScoringConfig
 from scoring.features import BINARY, LOG, SIGNED
+from scoring.reasons import describe
 from scoring.logrecord import (
     EventRecord,
     RecordCodec,
     RecordError,
+    AnswerCodec,
     StoredAnswer,
     dequantise,
     quantise,
@@ -181,28 +183,50 @@ def test_arbitrary_bytes_decode_or_raise_record_error(data: bytes) -> None:
     with contextlib.suppress(RecordError):
         CODEC.decode(data)
     with contextlib.suppress(RecordError):
-        StoredAnswer.from_bytes(data)
+        ANSWERS.decode(data)
 
 
+ANSWERS = AnswerCodec(ScoringConfig())
 answers = st.builds(
     StoredAnswer,
     risk=st.floats(min_value=0.0, max_value=1.0),
     decision=st.sampled_from(["allow", "review", "deny"]),
-    reasons=st.lists(st.tuples(st.text(max_size=40), st.floats(allow_nan=False)), max_size=3).map(
-        tuple
-    ),
+    reasons=st.lists(
+        st.tuples(st.sampled_from(ANSWERS.codes), st.floats(0.0, 1e6)), max_size=3
+    ).map(tuple),
     model_version=st.integers(0, 2**63 - 1),
 )
 
 
 @given(answers)
 def test_stored_answer_round_trip(answer: StoredAnswer) -> None:
-    assert StoredAnswer.from_bytes(answer.to_bytes()) == answer
+    """Round trip to the precision answers are given in: risk to 6 decimals, each reason's
+    number to the grid its words show (`scoring.reasons.display_round`)."""
+    back = ANSWERS.decode(ANSWERS.encode(answer))
+    assert back.decision == answer.decision
+    assert back.model_version == answer.model_version
+    assert back.risk == round(answer.risk * 1_000_000) / 1_000_000
+    assert [c for c, _ in back.reasons] == [c for c, _ in answer.reasons]
+    for (code, value), (_, shown) in zip(answer.reasons, back.reasons, strict=True):
+        assert describe(code, value) == describe(code, shown)
+
+
+@given(answers)
+def test_stored_answer_is_small(answer: StoredAnswer) -> None:
+    """Small enough for Redis's embedded-string encoding (44 bytes) with three reasons."""
+    assert len(ANSWERS.encode(answer)) <= 44
+
+
+def test_answer_of_another_configuration_is_refused() -> None:
+    other = AnswerCodec(ScoringConfig(half_lives_s=(3_600.0, 2_592_000.0)))
+    data = other.encode(StoredAnswer(0.5, "review", (), 1))
+    with pytest.raises(RecordError, match="another configuration"):
+        ANSWERS.decode(data)
 
 
 @pytest.mark.parametrize(
     "data", [b"", b"\xc1", msgpack.packb([1, 2]), msgpack.packb(7), msgpack.packb([0.1, "x", 5, 1])]
 )
 def test_garbage_stored_answer_raises_record_error(data: bytes) -> None:
-    with pytest.raises(RecordError, match="not a stored answer"):
-        StoredAnswer.from_bytes(data)
+    with pytest.raises(RecordError):
+        ANSWERS.decode(data)
