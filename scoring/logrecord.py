@@ -13,10 +13,9 @@ so both learn exactly the same model from the same stream.
 
 from __future__ import annotations
 
+import zlib
 from collections.abc import Sequence
 from dataclasses import dataclass
-
-import zlib
 
 import msgpack
 import numpy as np
@@ -226,12 +225,13 @@ class AnswerCodec:
     Examples
     --------
     >>> codec = AnswerCodec(ScoringConfig())
-    >>> a = StoredAnswer(0.1234564, "review", (("device.accounts", 7.2), ("amount.vs_usual", 6.04)), 4)
-    >>> data = codec.encode(a)
+    >>> reasons = (("device.accounts", 7.2), ("amount.vs_usual", 6.04))
+    >>> data = codec.encode(StoredAnswer(0.1234564, "review", reasons, 4))
     >>> len(data) < 25
     True
-    >>> codec.decode(data)
-    StoredAnswer(risk=0.123456, decision='review', reasons=(('device.accounts', 7.2), ('amount.vs_usual', 6.0)), model_version=4)
+    >>> back = codec.decode(data)
+    >>> back.risk, back.decision, back.reasons
+    (0.123456, 'review', (('device.accounts', 7.2), ('amount.vs_usual', 6.0)))
     """
 
     def __init__(self, config: ScoringConfig) -> None:

@@ -47,7 +47,8 @@ def _per_stat(kind_words: str, stat: str, value: float) -> str | None:
     if stat == "new":
         return f"{kind_words}: never seen before"
     if stat == "bad":
-        return f"{kind_words}: confirmed fraud at about {math.exp(min(value, 30.0)):.0f}x the usual rate"
+        times = math.exp(min(value, 30.0))
+        return f"{kind_words}: confirmed fraud at about {times:.0f}x the usual rate"
     if stat == "young_hub":
         return f"{kind_words}: new, yet already used by about {_count(value)} accounts today"
     if stat == "accounts":

@@ -17,16 +17,16 @@ from hypothesis import strategies as st
 
 from scoring.config import ScoringConfig
 from scoring.features import BINARY, LOG, SIGNED
-from scoring.reasons import describe
 from scoring.logrecord import (
+    AnswerCodec,
     EventRecord,
     RecordCodec,
     RecordError,
-    AnswerCodec,
     StoredAnswer,
     dequantise,
     quantise,
 )
+from scoring.reasons import describe
 
 CFG = ScoringConfig()
 CODEC = RecordCodec(CFG)
