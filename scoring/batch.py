@@ -190,11 +190,10 @@ class _Versions:
     """Every published model state as rows, and which one each event was scored with."""
 
     means: list[np.ndarray] = field(default_factory=list)
-    scale: list[np.ndarray] = field(default_factory=list)  # inv_std * weights
+    variances: list[np.ndarray] = field(default_factory=list)
+    weights: list[np.ndarray] = field(default_factory=list)
     intercept: list[float] = field(default_factory=list)
     blend: list[float] = field(default_factory=list)
-    prior_slope: list[float] = field(default_factory=list)
-    eligible: list[np.ndarray] = field(default_factory=list)
     number: list[int] = field(default_factory=list)
 
     def add(self, fusion: Fusion) -> None:
@@ -219,13 +218,11 @@ class _Versions:
         blend: float,
         number: int,
     ) -> None:
-        inv_std = inverse_std(variances)
         self.means.append(means)
-        self.scale.append(inv_std * weights)
+        self.variances.append(variances)
+        self.weights.append(weights)
         self.intercept.append(intercept)
         self.blend.append(blend)
-        self.prior_slope.append(float(weights[-1]) * float(inv_std[-1]))
-        self.eligible.append(fusion.reason_eligible(weights))
         self.number.append(number)
 
 
@@ -356,7 +353,7 @@ def score_rows(
     decisions: list[str] = []
     reasons: list[str] = []
     table = _ReasonTable(fusion)
-    params = _stack(versions)
+    params = _stack(versions, fusion)
     for start in range(0, n, chunk):
         stop = min(start + chunk, n)
         r, text = _score_chunk(x[start:stop], version_of[start:stop], params, fusion, table)
@@ -373,14 +370,17 @@ def score_rows(
     return risk, decisions, reasons
 
 
-def _stack(v: _Versions) -> dict[str, np.ndarray]:
+def _stack(v: _Versions, fusion: Fusion) -> dict[str, np.ndarray]:
+    """Every model state as rows, with what scoring derives from it (as `Fusion` does)."""
+    inv_std = inverse_std(np.vstack(v.variances))
+    weights = np.vstack(v.weights)
     return {
         "means": np.vstack(v.means),
-        "scale": np.vstack(v.scale),
+        "scale": inv_std * weights,
         "intercept": np.array(v.intercept),
         "blend": np.array(v.blend),
-        "slope": np.array(v.prior_slope),
-        "eligible": np.vstack(v.eligible),
+        "slope": weights[:, -1] * inv_std[:, -1],
+        "eligible": fusion.reason_eligible_rows(weights),
     }
 
 
@@ -407,17 +407,24 @@ def _score_chunk(
     )
     logit = np.where(a > 0.0, (1.0 - a) * prior_logit + a * model_logit, prior_logit)
     risk = sigmoid_array(logit)
-    prior_weight = np.where(a > 0.0, (1.0 - a) + a * params["slope"][version], 1.0)
-    model_w = a[:, None] * contributions
-    model_on = (
-        (model_w > REASON_FLOOR)
-        & params["eligible"][version]
-        & ~(table.binary[None, :] & (x == 0.0))
-    )
-    prior_w = points_by_code * prior_weight[:, None]
-    members = _MemberView(model_w, model_on, prior_w, points_by_code > 0.0)
-    picks = _pick_reasons(members, table, fusion.config.reasons)
-    return risk, _reason_texts(picks, x, values_by_code, table)
+    texts = [""] * len(risk)
+    rows = np.flatnonzero(risk >= fusion.config.reason_floor_risk)  # others get no reasons
+    if len(rows):
+        x, a, version = x[rows], a[rows], version[rows]
+        contributions, points_by_code = contributions[rows], points_by_code[rows]
+        prior_weight = np.where(a > 0.0, (1.0 - a) + a * params["slope"][version], 1.0)
+        model_w = a[:, None] * contributions
+        model_on = (
+            (model_w > REASON_FLOOR)
+            & params["eligible"][version]
+            & ~(table.binary[None, :] & (x == 0.0))
+        )
+        prior_w = points_by_code * prior_weight[:, None]
+        members = _MemberView(model_w, model_on, prior_w, points_by_code > 0.0)
+        picks = _pick_reasons(members, table, fusion.config.reasons)
+        for i, text in zip(rows.tolist(), _reason_texts(picks, x, values_by_code[rows], table)):
+            texts[i] = text
+    return risk, texts
 
 
 @dataclass

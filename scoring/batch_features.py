@@ -74,9 +74,17 @@ def segmented_cumsum(values: np.ndarray, starts: np.ndarray) -> np.ndarray:
     out = np.empty_like(values)
     first = np.flatnonzero(starts)
     lengths = np.diff(np.append(first, len(values)))
-    for length in np.unique(lengths):
-        rows = first[lengths == length]
-        idx = rows[:, None] + np.arange(length)
+    by_length = np.argsort(lengths, kind="stable")
+    sorted_lengths = lengths[by_length]
+    bounds = np.flatnonzero(np.diff(sorted_lengths)) + 1
+    for group in np.split(by_length, bounds):
+        if len(group) == 0:
+            continue
+        length = int(lengths[group[0]])
+        if length == 1:
+            out[first[group]] = values[first[group]]
+            continue
+        idx = first[group][:, None] + np.arange(length)
         out[idx] = np.cumsum(values[idx], axis=1)
     return out
 

@@ -41,38 +41,19 @@ from scoring.config import KIND_LETTERS, ScoringConfig
 from scoring.fusion import Fusion, OnlineModel
 from scoring.profile import Profile, TimeBasis, _add
 
-__all__ = [
-    "LearnedVersions",
-    "PreparedReplay",
-    "final_profiles",
-    "learn_versions",
-    "prepare_replay",
-    "score_range",
-]
-
 
 def _example_columns() -> tuple[PlannedColumns, ScoringConfig]:
-    """Three events of one account (two of them with a device), planned: for the examples."""
+    """Three events of one account, two of them with a device, planned (for the examples)."""
     from scoring.batch_plan import ColumnPlanner
     from scoring.hashing import KeyHasher
 
     config = ScoringConfig()
+    fields: dict[str, Sequence[str | None]] = {f: [None] * 3 for f in ("ip", "phone", "email")}
+    fields |= {"account_id": ["acct-1"] * 3, "device_id": ["dev-1", None, "dev-1"]}
+    times = np.array([1_790_000_000.0, 1_790_000_600.0, 1_790_003_600.0])
+    amounts = np.array([np.nan, np.nan, 40.0])
     planner = ColumnPlanner(config, KeyHasher(b"example-secret"))
-    fields: dict[str, Sequence[str | None]] = {
-        "account_id": ["acct-1", "acct-1", "acct-1"],
-        "device_id": ["dev-1", None, "dev-1"],
-        "ip": [None] * 3,
-        "phone": [None] * 3,
-        "email": [None] * 3,
-    }
-    cols = planner.plan(
-        ["e1", "e2", "e3"],
-        np.array([1_790_000_000.0, 1_790_000_600.0, 1_790_003_600.0]),
-        ["signup", "login", "checkout"],
-        np.array([np.nan, np.nan, 40.0]),
-        fields,
-    )
-    return cols, config
+    return planner.plan(["e1", "e2", "e3"], times, ["login"] * 3, amounts, fields), config
 
 
 # --- stages ------------------------------------------------------------------------------------
@@ -120,11 +101,23 @@ def prepare_replay(
     if labels is not None and len(labels.event_row):
         applications, outcomes, pending = schedule_labels(ts, labels, record_ttl_s)
     bad = {
-        kind: _label_reads(cols, indexes[kind], cols.ids[kind], applications, config)
-        for kind in config.label_kinds
+        kind: _bad_reads(cols, indexes, applications, config, kind) for kind in config.label_kinds
     }
     x = BatchFeatureReader(config).read(cols, indexes, bad, since if since is not None else 0.0)
     return PreparedReplay(x, applications, outcomes, pending)
+
+
+def _bad_reads(
+    cols: PlannedColumns,
+    indexes: dict[str, KindIndex],
+    applications: list[Application],
+    config: ScoringConfig,
+    kind: str,
+) -> np.ndarray:
+    """`_label_reads`; no reads (NaN) for a kind no event carries, which it cannot index."""
+    if len(indexes[kind].order) == 0:
+        return np.full(len(cols), np.nan)
+    return _label_reads(cols, indexes[kind], cols.ids[kind], applications, config)
 
 
 @dataclass
@@ -288,6 +281,18 @@ def _offsets(lengths: np.ndarray) -> np.ndarray:
     return offsets
 
 
+@dataclass
+class _Kind:
+    """One kind's events grouped by identifier (`KindIndex`) and its live final segments."""
+
+    kind: str
+    cols: PlannedColumns
+    config: ScoringConfig
+    index: KindIndex
+    finals: _Finals
+    t_whole: np.ndarray  # per position in index order: the event's whole second, as int() gives
+
+
 def _kind_profiles(
     cols: PlannedColumns,
     kind: str,
@@ -300,29 +305,26 @@ def _kind_profiles(
     if len(index.order) == 0:
         return
     finals = _finals(index, ids, cols.ts_s, config.ttl_s, now)
-    profiles = [Profile(config) for _ in finals.codes]
     t_whole = np.trunc(cols.ts_s[index.order]).astype(np.int64)
-    for p, first, last in zip(
-        profiles, t_whole[finals.start].tolist(), t_whole[finals.stop - 1].tolist(), strict=True
-    ):
+    view = _Kind(kind, cols, config, index, finals, t_whole)
+    profiles = [Profile(config) for _ in finals.codes]
+    firsts, lasts = t_whole[finals.start].tolist(), t_whole[finals.stop - 1].tolist()
+    for p, first, last in zip(profiles, firsts, lasts, strict=True):
         p.first_s, p.last_s = first, last
-    _add_counts(profiles, index, finals, cols, config)
+    _add_counts(profiles, view)
     if kind == config.amount_kind:
-        _add_amounts(profiles, index, finals, cols, config)
+        _add_amounts(profiles, view)
     for target in config.targets_of(kind):
-        _add_fanout(profiles, index, finals, cols.buckets[target], t_whole, KIND_LETTERS[target])
+        _add_fanout(profiles, view, cols.buckets[target], KIND_LETTERS[target])
     if kind in config.label_kinds:  # a learning record carries these kinds only
-        _add_labels(profiles, kind, index, finals, cols, applications, config)
+        _add_labels(profiles, view, applications)
     digests = cols.digests[kind]
     for code, profile in zip(finals.codes, profiles, strict=True):
         yield kind, digests[code], profile
 
 
 def _fold_runs(
-    sums: list[dict[int, float]],
-    owner: np.ndarray,
-    epochs: np.ndarray,
-    totals: np.ndarray,
+    sums: list[dict[int, float]], owner: np.ndarray, epochs: np.ndarray, totals: np.ndarray
 ) -> None:
     """Add each run's total to its owner's forward-decay sums, in order, as events add them."""
     for who, epoch, total in zip(owner.tolist(), epochs.tolist(), totals.tolist(), strict=True):
@@ -341,79 +343,58 @@ def _runs_of(
     return owner[ends], epoch[ends], inclusive[ends]
 
 
-def _add_counts(
-    profiles: list[Profile],
-    index: KindIndex,
-    finals: _Finals,
-    cols: PlannedColumns,
-    config: ScoringConfig,
-) -> None:
-    ts = cols.ts_s[index.order]
-    for j, half_life_s in enumerate(config.half_lives_s):
+def _add_counts(profiles: list[Profile], view: _Kind) -> None:
+    ts = view.cols.ts_s[view.index.order]
+    for j, half_life_s in enumerate(view.config.half_lives_s):
         epoch, factor = epoch_factors(ts, half_life_s)
-        owner, run_epoch, totals = _runs_of(factor, epoch, finals.profile_at)
+        owner, run_epoch, totals = _runs_of(factor, epoch, view.finals.profile_at)
         _fold_runs([p.counts[j] for p in profiles], owner, run_epoch, totals)
 
 
-def _add_amounts(
-    profiles: list[Profile],
-    index: KindIndex,
-    finals: _Finals,
-    cols: PlannedColumns,
-    config: ScoringConfig,
-) -> None:
+def _add_amounts(profiles: list[Profile], view: _Kind) -> None:
     """Spend: amounts above zero, against the longest counter's landmark (`Profile.record`)."""
-    amount = cols.amount[index.order]
-    paid = np.flatnonzero((np.nan_to_num(amount, nan=0.0) > 0.0) & (finals.profile_at >= 0))
+    owners = view.finals.profile_at
+    amount = view.cols.amount[view.index.order]
+    paid = np.flatnonzero((np.nan_to_num(amount, nan=0.0) > 0.0) & (owners >= 0))
     if len(paid) == 0:
         return
-    epoch, factor = epoch_factors(cols.ts_s[index.order][paid], config.half_lives_s[-1])
-    owner, run_epoch, totals = _runs_of(amount[paid] * factor, epoch, finals.profile_at[paid])
+    ts = view.cols.ts_s[view.index.order[paid]]
+    epoch, factor = epoch_factors(ts, view.config.half_lives_s[-1])
+    owner, run_epoch, totals = _runs_of(amount[paid] * factor, epoch, owners[paid])
     _fold_runs([p.amount for p in profiles], owner, run_epoch, totals)
 
 
 def _add_fanout(
-    profiles: list[Profile],
-    index: KindIndex,
-    finals: _Finals,
-    target_buckets: np.ndarray,
-    t_whole: np.ndarray,
-    letter: str,
+    profiles: list[Profile], view: _Kind, target_buckets: np.ndarray, letter: str
 ) -> None:
     """Each bucket's last hit (whole seconds) in the segment: the maximum, as times are sorted."""
-    bucket = target_buckets[index.order]
-    hits = np.flatnonzero((bucket >= 0) & (finals.profile_at >= 0))
+    owners = view.finals.profile_at
+    bucket = target_buckets[view.index.order]
+    hits = np.flatnonzero((bucket >= 0) & (owners >= 0))
     if len(hits) == 0:
         return
-    key = finals.profile_at[hits] * (int(bucket.max()) + 1) + bucket[hits]
+    key = owners[hits] * (int(bucket.max()) + 1) + bucket[hits]
     by_key = np.lexsort((hits, key))
     last = np.append(key[by_key][1:] != key[by_key][:-1], True)
     chosen = hits[by_key][last]
-    owners = finals.profile_at[chosen].tolist()
-    for who, b, t in zip(owners, bucket[chosen].tolist(), t_whole[chosen].tolist(), strict=True):
+    times = view.t_whole[chosen].tolist()
+    for who, b, t in zip(owners[chosen].tolist(), bucket[chosen].tolist(), times, strict=True):
         profiles[who].fanout.setdefault(letter, {})[b] = t
 
 
-def _add_labels(
-    profiles: list[Profile],
-    kind: str,
-    index: KindIndex,
-    finals: _Finals,
-    cols: PlannedColumns,
-    applications: Sequence[Application],
-    config: ScoringConfig,
-) -> None:
+def _add_labels(profiles: list[Profile], view: _Kind, applications: Sequence[Application]) -> None:
     """Labels reach the record an identifier had when they were applied; only those applied after
     its last segment began reach the final profile (`Learner.apply_label`'s two additions)."""
-    ids = cols.ids[kind]
-    first_row = index.order[finals.start]
+    ids, finals = view.cols.ids[view.kind], view.finals
+    first_row = view.index.order[finals.start]
     profile_of = dict(zip(finals.codes, range(len(finals.codes)), strict=True))
     for a in applications:
         code = int(ids[a.row])
         who = profile_of.get(code, -1) if code >= 0 else -1
         if who < 0 or first_row[who] >= a.position:
             continue
-        basis = TimeBasis.at(float(round(cols.ts_s[a.row])), config)  # a record keeps seconds
+        at_s = float(round(view.cols.ts_s[a.row]))  # a learning record keeps whole seconds
+        basis = TimeBasis.at(at_s, view.config)
         if a.previous is not None:
             profiles[who].add_label(basis, a.previous, -1.0)
         profiles[who].add_label(basis, a.is_fraud, 1.0)

@@ -82,6 +82,7 @@ class ScoringConfig:
     warmup_s: float = 3 * DAY_S
     censored_age_s: float = 30 * DAY_S
     reasons: int = 3
+    reasons_min_risk: float | None = None
     amount_kind: str = "account"
 
     def __post_init__(self) -> None:
@@ -119,6 +120,11 @@ class ScoringConfig:
     def ttl_s(self) -> float:
         """Lifetime of an identifier's record after its last event: a few longest half-lives."""
         return self.ttl_half_lives * max(self.half_lives_s)
+
+    @property
+    def reason_floor_risk(self) -> float:
+        """Events below this risk get no reasons: nothing lifts them above the base rate."""
+        return self.base_rate if self.reasons_min_risk is None else self.reasons_min_risk
 
     @property
     def exposure_index(self) -> int:

@@ -19,6 +19,7 @@ restores river objects from it and carries on learning exactly where it stopped.
 from __future__ import annotations
 
 import math
+import operator
 from collections.abc import Sequence
 from dataclasses import dataclass
 
@@ -28,7 +29,7 @@ from river import linear_model, optim, preprocessing
 
 from scoring.config import ScoringConfig
 from scoring.features import FeatureLayout
-from scoring.prior import Prior
+from scoring.prior import Evidence, Prior
 from scoring.reasons import describe
 
 PRIOR_FEATURE = "prior.points"
@@ -238,6 +239,7 @@ class OnlineModel:
         self.version = 0
         self.positives = 0
         self.negatives = 0
+        self._pick = operator.itemgetter(*self.features)
 
     def learn_one(self, inputs: Sequence[float], is_fraud: bool) -> None:
         """Learn one example (inputs in `features` order)."""
@@ -277,11 +279,10 @@ class OnlineModel:
         publishes as often as the per-event learner does and needs only these.
         """
         self.version += 1
-        n = len(self.features)
         weights = self.regression._weights
-        means = np.fromiter((self.scaler.means[f] for f in self.features), np.float64, n)
-        variances = np.fromiter((self.scaler.vars[f] for f in self.features), np.float64, n)
-        w = np.fromiter((weights.get(f, 0.0) for f in self.features), np.float64, n)
+        means = np.array(self._pick(self.scaler.means), dtype=np.float64)
+        variances = np.array(self._pick(self.scaler.vars), dtype=np.float64)
+        w = np.array([weights.get(f, 0.0) for f in self.features], dtype=np.float64)
         return means, variances, w, float(self.regression.intercept)
 
     @classmethod
@@ -370,20 +371,16 @@ class Fusion:
         points = sum(e.points for e in evidence)
         prior_logit = self.config.base_logit + points
         a = 0.0 if prior_only else self._blend
-        members: list[tuple[str, str, float, float]] = []
         logit = prior_logit
-        prior_weight = 1.0
+        contributions = None
         if a > 0.0:
             contributions = self.snapshot.contributions([*x, points])
             model_logit = float(contributions.sum()) + self.snapshot.intercept + self._sample_shift
             logit = (1.0 - a) * prior_logit + a * model_logit
-            prior_weight = (1.0 - a) + a * self.prior_slope()
-            members.extend(self._model_members(x, contributions, a))
-        order = {code: i for i, code in enumerate(self.prior.codes)}
-        for e in sorted(evidence, key=lambda e: order[e.code]):
-            members.append((_group(e.code), e.code, e.points * prior_weight, e.value))
         risk = sigmoid(logit)
-        top = choose_reasons(members, self.config.reasons)
+        top: list[tuple[str, float]] = []
+        if risk >= self.config.reason_floor_risk:
+            top = self._reasons(x, evidence, contributions, a)
         return Assessment(
             risk,
             self.decide(risk),
@@ -393,6 +390,23 @@ class Fusion:
             prior_logit,
             self.snapshot.version,
         )
+
+    def _reasons(
+        self,
+        x: Sequence[float],
+        evidence: list[Evidence],
+        contributions: np.ndarray | None,
+        a: float,
+    ) -> list[tuple[str, float]]:
+        members: list[tuple[str, str, float, float]] = []
+        prior_weight = 1.0
+        if contributions is not None:
+            prior_weight = (1.0 - a) + a * self.prior_slope()
+            members.extend(self._model_members(x, contributions, a))
+        order = {code: i for i, code in enumerate(self.prior.codes)}
+        for e in sorted(evidence, key=lambda e: order[e.code]):
+            members.append((_group(e.code), e.code, e.points * prior_weight, e.value))
+        return choose_reasons(members, self.config.reasons)
 
     def prior_slope(self) -> float:
         """Log-odds the model gives per point of the prior (its weight on the prior feature)."""
@@ -408,6 +422,12 @@ class Fusion:
         out: np.ndarray = self._explains_array & (
             (w[: len(self.layout.names)] >= 0) | self._age_array
         )
+        return out
+
+    def reason_eligible_rows(self, weights: np.ndarray) -> np.ndarray:
+        """`reason_eligible` for many model states at once (one row of weights each)."""
+        nf = len(self.layout.names)
+        out: np.ndarray = self._explains_array & ((weights[:, :nf] >= 0) | self._age_array)
         return out
 
     def _model_members(

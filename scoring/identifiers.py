@@ -106,7 +106,8 @@ def _truncate(text: str) -> str:
 
 
 def _normalise_opaque(kind: str, raw: str) -> Normalised:
-    text = fold_width(raw)
+    # ASCII text is already in NFKC form (and is valid UTF-8): only the trimming remains
+    text = raw.strip() if raw.isascii() else fold_width(raw)
     if not text:
         return EMPTY
     if text.lower() in _PLACEHOLDERS or _ZEROS.fullmatch(text):

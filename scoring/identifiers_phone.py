@@ -32,7 +32,17 @@ from functools import lru_cache
 
 import phonenumbers
 from phonenumbers import PhoneMetadata, PhoneNumberType
-from phonenumbers.phonenumberutil import NON_DIGITS_PATTERN, _number_type_helper
+from phonenumbers.phonenumberutil import (
+    _MAX_LENGTH_FOR_NSN,
+    _MIN_LENGTH_FOR_NSN,
+    NON_DIGITS_PATTERN,
+    ValidationResult,
+    _extract_country_code,
+    _maybe_strip_national_prefix_carrier_code,
+    _number_type_helper,
+    _set_italian_leading_zeros_for_phone_number,
+    _test_number_length,
+)
 from phonenumbers.re_util import re_compile
 
 from scoring.identifiers_base import (
@@ -118,6 +128,41 @@ def _parse(text: str, region: str | None) -> phonenumbers.PhoneNumber | None:
         return phonenumbers.parse(text, region)
     except phonenumbers.NumberParseException:
         return None
+
+
+_NOT_STRIPPABLE = (
+    ValidationResult.TOO_SHORT,
+    ValidationResult.IS_POSSIBLE_LOCAL_ONLY,
+    ValidationResult.INVALID_LENGTH,
+)
+
+
+def _parse_international(digits: str) -> phonenumbers.PhoneNumber | None:
+    """`phonenumbers.parse("+" + digits)` for a string of ASCII digits, without its generic
+    text handling (extraction, RFC 3966, alpha characters, extensions: all already done here).
+
+    The steps are the library's own for a number written with "+": the country code, then the
+    national prefix stripped when what remains still has a possible length, then the leading
+    zeros. Anything unusual goes to the library's parser itself; the tests compare both on every
+    example number and on perturbed ones.
+    """
+    if not 3 <= len(digits) <= 20:
+        return _parse(f"+{digits}", None)
+    country_code, national = _extract_country_code(digits)
+    if country_code == 0 or len(national) < _MIN_LENGTH_FOR_NSN:
+        return _parse(f"+{digits}", None)
+    region = phonenumbers.region_code_for_country_code(country_code)
+    metadata = PhoneMetadata.metadata_for_region_or_calling_code(country_code, region)
+    if metadata is not None:
+        _, potential, _ = _maybe_strip_national_prefix_carrier_code(national, metadata)
+        if _test_number_length(potential, metadata) not in _NOT_STRIPPABLE:
+            national = potential
+    if not _MIN_LENGTH_FOR_NSN <= len(national) <= _MAX_LENGTH_FOR_NSN:
+        return _parse(f"+{digits}", None)
+    number = phonenumbers.PhoneNumber(country_code=country_code)
+    _set_italian_leading_zeros_for_phone_number(national, number)
+    number.national_number = int(national)
+    return number
 
 
 def _prefix(country_code: int, national: str, ndc_digits: int) -> tuple[str, str]:
@@ -229,7 +274,7 @@ def _normalise_phone(raw: str, region: str | None) -> Normalised:
     flags = ["phone_extension"] if dialled.extension else []
     digits = dialled.digits
     if dialled.international:
-        number = _parse(f"+{digits}", None)
+        number = _parse_international(digits)
         if number is not None:
             return _from_number(number, flags)
         return _unparsed(digits, _leading_country_code(digits), flags)

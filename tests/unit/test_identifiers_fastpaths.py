@@ -117,3 +117,33 @@ def test_single_pass_matches_library_on_every_example_number() -> None:
             assert phonemod._ndc_length(number, ntype) == (
                 phonenumbers.length_of_national_destination_code(number)
             )
+
+
+def _international_inputs() -> list[str]:
+    """Digit strings after "+": every example number, the same with a national prefix or a
+    stray zero after the country code, and perturbed digits and lengths (ITU-T E.164 allows at
+    most 15 digits; longer and shorter strings must behave as the library does too)."""
+    rng = random.Random(11)
+    out = []
+    for number in EXAMPLES:
+        cc, nsn = str(number.country_code), phonenumbers.national_significant_number(number)
+        out += [cc + nsn, cc + "0" + nsn, cc + "00" + nsn, cc + nsn[:-1], cc + nsn + "7"]
+        digits = list(cc + nsn)
+        digits[rng.randrange(len(digits))] = str(rng.randrange(10))
+        out.append("".join(digits))
+    out += [
+        "".join(rng.choice("0123456789") for _ in range(n)) for n in range(1, 22) for _ in range(40)
+    ]
+    return out
+
+
+def test_international_parse_matches_library() -> None:
+    """`phonenumbers.parse("+" + digits)` is the reference, exception or number."""
+    inputs = _international_inputs()
+    assert len(inputs) > 5000
+    for digits in inputs:
+        try:
+            expected = phonenumbers.parse("+" + digits, None)
+        except phonenumbers.NumberParseException:
+            expected = None
+        assert phonemod._parse_international(digits) == expected, digits
