@@ -422,7 +422,8 @@ def _score_chunk(
         prior_w = points_by_code * prior_weight[:, None]
         members = _MemberView(model_w, model_on, prior_w, points_by_code > 0.0)
         picks = _pick_reasons(members, table, fusion.config.reasons)
-        for i, text in zip(rows.tolist(), _reason_texts(picks, x, values_by_code[rows], table)):
+        chosen = _reason_texts(picks, x, values_by_code[rows], table)
+        for i, text in zip(rows.tolist(), chosen, strict=True):
             texts[i] = text
     return risk, texts
 

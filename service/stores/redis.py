@@ -32,6 +32,7 @@ from service.config import Settings
 from service.stores import redis_streams as streams
 from service.stores.base import CLAIM_TTL_S, PENDING, Begun, Matured, StoreUnavailable
 from service.stores.redis_client import Client, check_server, guard, make_client
+from service.stores.redis_event import EventExchange
 from service.stores.redis_keys import (
     LABEL_GROUP,
     LABEL_QUEUE_KEY,
@@ -47,9 +48,7 @@ from service.stores.redis_keys import (
     identifier_key,
     label_fields,
     label_key,
-    queue_writes,
     record_stream_key,
-    reply_count,
     shadow_fields,
     shard_of,
 )
@@ -95,6 +94,7 @@ class RedisStore:
         self._next_due_s: float | None = None
         self._group_ready = False
         self.writer = WriteBehind(self._run_writes, WRITE_QUEUE, WRITE_BATCH)
+        self.exchange = EventExchange(self._ttl_s, scripted=not settings.redis_cluster)
 
     @classmethod
     async def connect(cls, settings: Settings, config: ScoringConfig) -> RedisStore:
@@ -102,13 +102,16 @@ class RedisStore:
         budget_s = settings.score_budget_ms / 1000.0
         fast = make_client(settings, budget_s)
         background = make_client(settings, max(BACKGROUND_TIMEOUT_S, budget_s))
+        store = cls(fast, background, settings, config)
         try:
             await check_server(background, BACKGROUND_TIMEOUT_S)
+            async with guard("loading the update script", BACKGROUND_TIMEOUT_S):
+                await store.exchange.load(background)
         except StoreUnavailable:
             await fast.aclose()
             await background.aclose()
             raise
-        return cls(fast, background, settings, config)
+        return store
 
     # -- the request path -------------------------------------------------------------------
 
@@ -117,40 +120,27 @@ class RedisStore:
         keys = [identifier_key(kind, digest) for kind, digest in plan.identifiers]
         writes = self.planner.event(plan)
         ask_since = self._since_s is None
-        async with guard("the event read and write", self.budget_s):
-            pipe = self.fast.pipeline(transaction=False)
-            pipe.set(
-                answer_key(plan.event_digest), PENDING, nx=True, get=True, px=self._claim_ttl_ms
-            )
+        claim_key = answer_key(plan.event_digest)
+
+        def head(pipe: Any) -> int:
+            pipe.set(claim_key, PENDING, nx=True, get=True, px=self._claim_ttl_ms)
             if ask_since:
                 pipe.set(SINCE_KEY, repr(plan.basis.t_s), nx=True, get=True)
-            for key, write in zip(keys, writes, strict=True):
-                if read:
-                    pipe.zrange(key, 0, -1, withscores=True)
-                queue_writes(pipe, key, write, self._ttl_s)
-            results = await pipe.execute()
-        claim = results[0]
+            return 2 if ask_since else 1
+
+        async with guard("the event read and write", self.budget_s):
+            done = await self.exchange.run(self.fast, head, keys, writes, read)
+        claim = done.head[0]
         if ask_since:
-            since = results[1]
+            since = done.head[1]
             self._since_s = plan.basis.t_s if since is None else float(since)
         if claim is not None:
             await self._undo(keys, writes)
             return Begun(duplicate=bytes(claim))
         if not read:
             return Begun()
-        return Begun(
-            profiles=self._profiles(results, ask_since, writes), observed_since_s=self._since_s
-        )
-
-    def _profiles(
-        self, results: list[Any], ask_since: bool, writes: list[ProfileWrites]
-    ) -> list[Profile | None]:
-        at = 2 if ask_since else 1
-        out: list[Profile | None] = []
-        for write in writes:
-            out.append(self._profile_of(results[at]))
-            at += 1 + reply_count(write)
-        return out
+        profiles = [self._profile_of(pairs) for pairs in done.before]
+        return Begun(profiles=profiles, observed_since_s=self._since_s)
 
     def _profile_of(self, pairs: list[tuple[bytes, float]]) -> Profile | None:
         if not pairs:

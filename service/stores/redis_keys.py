@@ -177,13 +177,31 @@ class WritePlanner:
         }
 
     def event(self, plan: EventPlan) -> list[ProfileWrites]:
-        """Writes of one event, one per identifier of the plan."""
+        """Writes of one event, one per identifier of the plan.
+
+        The sums, first seen and last seen are the same for every identifier of an event: they
+        come from one fresh `Profile` and are shared (the same objects) by every identifier's
+        writes. Each identifier adds its fan-out buckets (a maximum at the event's second, as
+        `Profile.record` keeps them) and, for the amount kind, its spend (from a second
+        `Profile`).
+        """
+        base = Profile(self.config)
+        base.record(plan.basis, (), None)
+        increments, lowest, seen = _split(base.to_members())
+        stale = self._stale(increments)
+        t = int(plan.basis.t_s)
         out = []
         for hits, amount in zip(plan.hits, plan.amounts, strict=True):
-            p = Profile(self.config)
-            p.record(plan.basis, hits, amount)
-            increments, lowest, highest = _split(p.to_members())
-            out.append(ProfileWrites(increments, lowest, highest, self._stale(increments)))
+            highest = seen
+            if hits and t > -1:  # `Profile.record` keeps a bucket only past -1 (its default)
+                highest = {**seen, **{f"{letter}{bucket}": float(t) for letter, bucket in hits}}
+            if amount is None:
+                out.append(ProfileWrites(increments, lowest, highest, stale))
+                continue
+            spend = Profile(self.config)
+            spend.record(plan.basis, (), amount)
+            own, _, _ = _split(spend.to_members())
+            out.append(ProfileWrites(own, lowest, highest, self._stale(own)))
         return out
 
     def label(self, basis: TimeBasis, is_fraud: bool, weight: float) -> ProfileWrites:

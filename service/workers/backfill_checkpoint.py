@@ -22,6 +22,7 @@ still has rows to score recomputes them, which is deterministic and takes second
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import json
 import os
@@ -164,10 +165,12 @@ class Checkpoint:
 
     def save_arrays(self, name: str, arrays: dict[str, np.ndarray]) -> None:
         """Numeric arrays as an uncompressed ``.npz`` (no pickled objects)."""
-        tmp = self.folder / f".{name}.{uuid.uuid4().hex}.part.npz"
+        tmp = self.folder / f".{name}.{uuid.uuid4().hex}.part"
+        named: dict[str, Any] = dict(arrays)
         try:
-            np.savez(tmp, **arrays)
-            with tmp.open("rb") as handle:
+            with tmp.open("wb") as handle:
+                np.savez(handle, **named)
+                handle.flush()
                 os.fsync(handle.fileno())
             os.replace(tmp, self.folder / name)
         except OSError as exc:
@@ -197,10 +200,8 @@ class Checkpoint:
             interrupted = path.name.startswith(".") and ".part" in path.name
             if path.is_file() and (ours or interrupted):
                 path.unlink(missing_ok=True)
-        try:
+        with contextlib.suppress(OSError):  # something of the user's is in there: leave it
             self.folder.rmdir()
-        except OSError:
-            pass  # something of the user's is in there: leave it
 
 
 # --- planned columns ---------------------------------------------------------------------------
@@ -244,7 +245,9 @@ def chunk_name(number: int) -> str:
     return f"scores-{number:05d}.msgpack"
 
 
-def chunk_payload(start: int, risk: np.ndarray, decision: list[str], reasons: list[str]) -> dict:
+def chunk_payload(
+    start: int, risk: np.ndarray, decision: list[str], reasons: list[str]
+) -> dict[str, object]:
     """One chunk's scores as msgpack-ready values (risk as raw float64 bytes: exact)."""
     return {
         "start": start,

@@ -113,8 +113,11 @@ class Progress:
         name = self.current or ""
         number = STAGES.index(name) + 1 if name in STAGES else None
         head = f"[{number}/{len(STAGES)} {name}]" if number else f"[{name}]"
-        if self._rows_started is None or not self.total_rows:
-            return f"{head} {self.total_rows:,} events, {_seconds(self.wall_s())} so far"
+        so_far = f"{_seconds(self.wall_s())} so far"
+        if not self.total_rows:
+            return f"{head} {so_far}"
+        if self._rows_started is None:
+            return f"{head} {self.total_rows:,} events, {so_far}"
         share = min(1.0, self._rows / self.total_rows)
         filled = round(share * BAR_CELLS)
         bar = "#" * filled + "." * (BAR_CELLS - filled)

@@ -31,7 +31,7 @@ WARM_BATCH = 1000
 
 
 class WarmError(Exception):
-    """Redis could not be warmed; the message says why (never the URL, which may hold a password)."""
+    """Redis could not be warmed; the message says why (never the URL: it may hold a password)."""
 
 
 @dataclass(frozen=True)
