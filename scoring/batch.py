@@ -108,7 +108,7 @@ def _label_reads(
     """Per event: the fraud-label sum its identifier's record holds before it (NaN: none)."""
     n = len(cols)
     out = np.full(n, np.nan)
-    if not applications:
+    if not applications or len(index.order) == 0:
         return out
     order = index.order
     keys = ids[order] * (n + 1) + order  # sorted: grouped by id, positions ascending

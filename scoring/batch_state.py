@@ -61,11 +61,17 @@ def _example_columns() -> tuple[PlannedColumns, ScoringConfig]:
 
 @dataclass
 class PreparedReplay:
-    """What learning and scoring need and the model does not change.
+    """What learning and scoring need and the model does not change (`prepare_replay`).
 
     ``x`` is the feature matrix (rows in input order), ``applications`` the labels that apply and
     where, ``outcomes`` the count of each label outcome, ``labels_pending`` the labels that
     arrive after the last event.
+
+    Examples
+    --------
+    >>> empty = PreparedReplay(np.zeros((0, 3)), [], {}, 0)
+    >>> empty.x.shape, empty.labels_pending
+    ((0, 3), 0)
     """
 
     x: np.ndarray
@@ -126,6 +132,14 @@ class LearnedVersions:
 
     `to_arrays` and `from_arrays` turn it into plain numeric arrays and back, so that a caller
     can keep it between runs without pickling anything.
+
+    Examples
+    --------
+    >>> cols, config = _example_columns()
+    >>> prepared = prepare_replay(cols, None, config, record_ttl_s=86400.0)
+    >>> learned = learn_versions(prepared, cols, Fusion(config), None, record_ttl_s=86400.0)
+    >>> learned.published, learned.version_of.tolist()   # frozen: the starting state only
+    (0, [0, 0, 0])
     """
 
     versions: _Versions
@@ -267,18 +281,11 @@ def _finals(
     last_s = np.trunc(ts_s[order[last]])  # the store keeps whole seconds, as int() does
     live = now - last_s <= ttl_s  # the store drops a record once ``now - last_s > ttl``
     start, stop = start[live], last[live] + 1
-    profile_at = np.full(len(order), -1, dtype=np.int64)
-    spans = stop - start
-    profile_at[np.repeat(start, spans) + _offsets(spans)] = np.repeat(np.arange(len(start)), spans)
+    marks = np.zeros(len(order) + 1, dtype=np.int64)  # the ranges are disjoint: a step up
+    marks[start] += np.arange(1, len(start) + 1)  # to profile number + 1 at each start, and
+    marks[stop] -= np.arange(1, len(start) + 1)  # back down to 0 after each segment
+    profile_at = np.cumsum(marks[:-1]) - 1
     return _Finals(sorted_ids[start].tolist(), start, stop, profile_at)
-
-
-def _offsets(lengths: np.ndarray) -> np.ndarray:
-    """0, 1, ..., length-1 for each length, concatenated."""
-    total = int(lengths.sum())
-    firsts = np.repeat(np.cumsum(lengths) - lengths, lengths)
-    offsets: np.ndarray = np.arange(total) - firsts
-    return offsets
 
 
 @dataclass

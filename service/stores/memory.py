@@ -87,7 +87,9 @@ class MemoryStore:
 
     async def load_record(self, event_digest: bytes) -> bytes | None:
         held = self.records.get(event_digest)
-        return None if held is None else held[0]
+        if held is None or held[1] <= self._now_s:  # outlived the label horizon
+            return None
+        return held[0]
 
     async def get_label(self, event_digest: bytes) -> bool | None:
         return self.labels.get(event_digest)
@@ -114,7 +116,7 @@ class MemoryStore:
         while self._due and self._due[0][0] <= until_s:
             _, _, digest = heapq.heappop(self._due)
             held = self.records.get(digest)
-            if held is not None:
+            if held is not None and held[1] > self._now_s:
                 out.append(Matured(digest, held[0]))
         return out
 

@@ -118,12 +118,12 @@ class BackfillRun:
         self._score_and_write(inputs.events, chunks)
         if self.o.save_model is not None:
             save_model(self.o.save_model, self.fusion.snapshot)
+        self.report.wall_s = self.progress.wall_s()  # end to end: reading to the scores file
         if self.o.warm is not None:
             self._warm(cols, labels)
         if self.checkpoint is not None:
             self.checkpoint.clear()
         self.report.stage_s = self.progress.finish()
-        self.report.wall_s = self.progress.wall_s()
         return self.report
 
     def _open_checkpoint(self) -> None:
@@ -296,6 +296,11 @@ def run_backfill(args: argparse.Namespace) -> int:
     progress = Progress(stream)
     try:
         report = BackfillRun(options, settings, progress).run()
+    except OSError as exc:  # a full disk, a vanished folder: the system's words, no traceback
+        if isinstance(exc, FileNotFoundError | IsADirectoryError | PermissionError):
+            raise  # the command prints these itself
+        where = f"{exc.filename}: " if exc.filename else ""
+        raise CommandError(f"{where}{exc.strerror or exc}") from None
     finally:
         progress.finish()  # clears the progress line before any message
     print(format_summary(report))

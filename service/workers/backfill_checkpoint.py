@@ -109,8 +109,9 @@ class Checkpoint:
             if held != digest:
                 raise InputError(
                     path,
-                    "holds the checkpoint of a run with other input files, settings or program "
-                    "version; give another --checkpoint folder, or delete this one to start over",
+                    "holds the checkpoint of a run with other input files, settings, "
+                    "--checkpoint-every or program version; give another --checkpoint folder, "
+                    "or delete this one to start over",
                 )
             return cls(path, digest, resumed=True)
         if any(path.iterdir()):

@@ -40,7 +40,8 @@ class BackfillReport:
 
     @property
     def events_per_s(self) -> float:
-        """Events scored per second of wall time, end to end (reading to the last write)."""
+        """Events scored per second of wall time, end to end: from reading the input to the
+        scores file (and saved model) in place; a warm-up of Redis comes after."""
         return self.events_scored / self.wall_s if self.wall_s > 0 else 0.0
 
 
@@ -62,9 +63,10 @@ def _labels_line(r: BackfillReport) -> str:
     return (
         f"  labels      {_n(r.labels_read)} read, {_n(r.labels_rejected)} rejected; "
         f"{_n(o.get('applied', 0))} applied, {_n(o.get('changed', 0))} changed, "
-        f"{_n(unknown)} unknown ({_n(r.labels_unknown_ids)} name no event of the events file, "
-        f"the rest were too old or not yet scored), {_n(o.get('duplicate', 0))} duplicate, "
-        f"{_n(r.labels_pending)} pending (known only after the last event)"
+        f"{_n(o.get('duplicate', 0))} duplicate, {_n(r.labels_pending)} pending "
+        "(known only after the last event)\n"
+        f"              {_n(unknown)} unknown ({_n(r.labels_unknown_ids)} name no event of the "
+        "events file; any others arrived after the label horizon or before their event)"
     )
 
 
