@@ -15,6 +15,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from scoring.config import ScoringConfig
+from scoring.event import maturity_sampled
 from scoring.features import EVENT_TYPES, FLAGS
 from scoring.hashing import KeyHasher
 from scoring.identifiers import Normalised, field_normaliser
@@ -62,7 +63,6 @@ class ColumnPlanner:
         self.config = config
         self.hasher = hasher
         self.default_region = default_region
-        self._sample_below = int(config.negative_sample_rate * 2**32)
 
     def plan(
         self,
@@ -142,11 +142,8 @@ class ColumnPlanner:
         return {kind: (per_value[kind], list(codes[kind])) for kind in per_value}
 
     def _sampled(self, event_id: Sequence[str]) -> np.ndarray:
-        """Which events the maturity learning samples (the engine's rule, on the event digest)."""
-        hash_text = self.hasher.hash_text
-        below = self._sample_below
+        """Which events the maturity learning samples (`event.maturity_sampled`, per event)."""
+        rate = self.config.negative_sample_rate
         return np.fromiter(
-            (int.from_bytes(hash_text("event", e)[:4], "big") < below for e in event_id),
-            dtype=bool,
-            count=len(event_id),
+            (maturity_sampled(e, rate) for e in event_id), dtype=bool, count=len(event_id)
         )

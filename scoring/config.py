@@ -74,7 +74,7 @@ class ScoringConfig:
     review_at: float = 0.25
     deny_at: float = 0.75
     maturity_s: float = 14 * DAY_S
-    negative_sample_rate: float = 0.05
+    negative_sample_rate: float = 0.03
     learning_rate: float = 0.02
     l2: float = 1e-4
     takeover_labels: int = 200
@@ -92,12 +92,17 @@ class ScoringConfig:
     def _check_kinds(self) -> None:
         unknown = [k for k in self.kinds if k not in KIND_LETTERS]
         if unknown:
-            raise ConfigError(f"unknown identifier kinds {unknown}; known: {list(KIND_LETTERS)}")
+            raise ConfigError(
+                f"kinds: unknown identifier kinds {unknown}; known: {list(KIND_LETTERS)}"
+            )
         if any(k not in self.kinds for k in self.label_kinds):
             raise ConfigError("label_kinds must be tracked kinds")
         for kind, target in self.fanout:
             if kind not in self.kinds or target not in self.kinds:
-                raise ConfigError(f"fan-out pair ({kind}, {target}) names a kind not tracked")
+                raise ConfigError(
+                    f"fanout: the pair ({kind}, {target}) names a kind not in kinds; "
+                    "track the kind or drop the pair"
+                )
         if self.label_half_life_s not in self.half_lives_s:
             raise ConfigError(
                 "label_half_life_s must equal one of half_lives_s: the event counter with that "
@@ -106,7 +111,11 @@ class ScoringConfig:
 
     def _check_numbers(self) -> None:
         if not self.half_lives_s or min(self.half_lives_s) <= 0:
-            raise ConfigError("half-lives must be positive seconds")
+            raise ConfigError(
+                f"half_lives_s must be positive seconds, got {list(self.half_lives_s)}"
+            )
+        if not self.prior_strength > 0.0:
+            raise ConfigError("prior_strength must be positive (pseudo-events of the Beta prior)")
         if not 0.0 < self.base_rate < 1.0:
             raise ConfigError("base_rate must be strictly between 0 and 1")
         if not 0.0 <= self.review_at <= self.deny_at <= 1.0:

@@ -7,12 +7,25 @@ to each identifier's profile. The plan is pure data: the embedded store applies 
 
 from __future__ import annotations
 
+import zlib
 from dataclasses import dataclass
 
 from scoring.config import KIND_LETTERS, ScoringConfig
 from scoring.hashing import KeyHasher
 from scoring.identifiers import normalise_event
 from scoring.profile import TimeBasis
+
+
+def maturity_sampled(event_id: str, rate: float) -> bool:
+    """Whether an event is one of the sample learned as legitimate once it matures.
+
+    A fixed function of the event id (CRC-32, ISO 3309, read as a fraction of 2**32), so the
+    live engine and the batch replay draw the same sample without sharing any state.
+
+    >>> maturity_sampled("ev-1", 1.0), maturity_sampled("ev-1", 0.0)
+    (True, False)
+    """
+    return zlib.crc32(event_id.encode()) < rate * 4294967296.0
 
 
 @dataclass(frozen=True, slots=True)

@@ -73,7 +73,9 @@ def sigmoid_array(z: np.ndarray) -> np.ndarray:
     [0.5, 0.0]
     """
     with np.errstate(over="ignore"):
-        e = np.exp(np.where(z > -700, z, -700.0))
+        # the exponent is kept <= 0: e^z of a large positive z would be inf, and inf / inf
+        # a NaN (with a warning) in the branch that np.where then discards
+        e = np.exp(np.where(z > -700, np.minimum(z, 0.0), -700.0))
         pos = 1.0 / (1.0 + np.exp(-np.maximum(z, 0.0)))
         neg = np.where(z > -700, e / (1.0 + e), 0.0)
     return np.where(z >= 0, pos, neg)

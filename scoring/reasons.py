@@ -20,6 +20,7 @@ KIND_WORDS = {
     "email_domain": "e-mail domain",
 }
 HORIZON_WORDS = {"1h": "hour", "1d": "day", "30d": "30 days"}
+_UNIT_WORDS = {"s": "second", "m": "minute", "h": "hour", "d": "day"}
 
 _FIXED = {
     "email.disposable": "e-mail domain: on the disposable-address list",
@@ -34,13 +35,30 @@ _FIXED = {
 }
 
 
+def horizon_words(label: str) -> str:
+    """Plain words for a horizon label of `scoring.features.horizon_label`.
+
+    Half-lives and windows are configuration, so every label must read as words, not only the
+    default ones.
+
+    >>> horizon_words("1h"), horizon_words("30d"), horizon_words("10m"), horizon_words("2h")
+    ('hour', '30 days', '10 minutes', '2 hours')
+    """
+    if label in HORIZON_WORDS:
+        return HORIZON_WORDS[label]
+    number, unit = label[:-1], _UNIT_WORDS.get(label[-1:])
+    if unit is None or not number.isdigit():
+        return label
+    return unit if number == "1" else f"{number} {unit}s"
+
+
 def _count(v: float) -> str:
     return f"{v:.0f}" if v >= 1.5 else f"{v:.1f}"
 
 
 def _per_stat(kind_words: str, stat: str, value: float) -> str | None:
     if stat.startswith("n_"):
-        horizon = HORIZON_WORDS.get(stat[2:], stat[2:])
+        horizon = horizon_words(stat[2:])
         return f"{kind_words}: {_count(value)} events in the last {horizon} (decayed count)"
     if stat == "age_d":
         return f"{kind_words}: first seen {value:.1f} days ago"
@@ -63,7 +81,7 @@ def _per_stat(kind_words: str, stat: str, value: float) -> str | None:
 def _fanout(kind_words: str, stat: str, value: float) -> str | None:
     target, _, rest = stat.rpartition("s_")
     if target in KIND_WORDS and rest:
-        window = HORIZON_WORDS.get(rest, rest)
+        window = horizon_words(rest)
         return (
             f"{kind_words}: seen with about {_count(value)} "
             f"{KIND_WORDS[target]}s in the last {window}"

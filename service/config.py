@@ -73,7 +73,7 @@ class Settings(BaseSettings):
     label_half_life_s: float = 30 * DAY_S
     fanout_buckets: int = 32
     maturity_s: float = 14 * DAY_S
-    negative_sample_rate: float = 0.05
+    negative_sample_rate: float = 0.03
 
     @field_validator("api_keys", "half_lives_s", mode="before")
     @classmethod

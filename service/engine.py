@@ -14,7 +14,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 from scoring.config import ScoringConfig
-from scoring.event import Event, Planner
+from scoring.event import Event, Planner, maturity_sampled
 from scoring.features import FeatureReader
 from scoring.fusion import Fusion
 from scoring.hashing import KeyHasher
@@ -71,7 +71,6 @@ class Engine:
         self.answers = AnswerCodec(config)
         self.fusion = fusion
         self.learner = learner
-        self._sample_below = int(config.negative_sample_rate * 2**32)
 
     async def score(self, event: Event) -> ScoreResult:
         """Score an event on the state before it, then record it (idempotent on event_id)."""
@@ -99,7 +98,7 @@ class Engine:
             plan,
             self.answers.encode(answer),
             self.codec.encode(record),
-            self._mature_at(plan.event_digest, event.ts_s),
+            self._mature_at(event.event_id, event.ts_s),
         )
         return ScoreResult(event.event_id, a.risk, a.decision, a.reasons, a.codes, a.model_version)
 
@@ -147,8 +146,8 @@ class Engine:
             raise RuntimeError("this engine has no in-process learner: queue labels instead")
         return await self.learner.apply_label(self.hasher.hash_text("event", event_id), is_fraud)
 
-    def _mature_at(self, event_digest: bytes, ts_s: float) -> float | None:
-        if int.from_bytes(event_digest[:4], "big") < self._sample_below:
+    def _mature_at(self, event_id: str, ts_s: float) -> float | None:
+        if maturity_sampled(event_id, self.config.negative_sample_rate):
             return ts_s + self.config.maturity_s
         return None
 
