@@ -391,7 +391,8 @@ def _score_chunk(
     fusion: Fusion,
     table: _ReasonTable,
 ) -> tuple[np.ndarray, list[str]]:
-    points_by_code, values_by_code = fusion.prior.evaluate_matrix(x)
+    # the prior reads whole columns: give it a column-major copy of the chunk
+    points_by_code, values_by_code = fusion.prior.evaluate_matrix(np.asfortranarray(x))
     points = points_by_code.sum(axis=1)
     prior_logit = fusion.config.base_logit + points
     a = params["blend"][version]

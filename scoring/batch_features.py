@@ -149,7 +149,13 @@ def _kind_counts(
     return counts, spent, has_spent
 
 
-def recent_ends(index: KindIndex, ts_s: np.ndarray, windows_s: Sequence[float]) -> list[np.ndarray]:
+def rows_below(ts_s: np.ndarray, windows_s: Sequence[float]) -> list[np.ndarray]:
+    """Per window, per row: how many rows have a time below ``floor(t) + window``."""
+    whole = np.floor(ts_s)
+    return [np.searchsorted(ts_s, whole + w, side="left") for w in windows_s]
+
+
+def recent_ends(index: KindIndex, n_rows: int, below: Sequence[np.ndarray]) -> list[np.ndarray]:
     """Per window, per position: the last position of its segment still within the window.
 
     For a hit at position p (whole second ``s``), later positions q of the segment see it as
@@ -158,12 +164,10 @@ def recent_ends(index: KindIndex, ts_s: np.ndarray, windows_s: Sequence[float]) 
     below v; and (segment, row) keys are sorted along the index, as are the limits, so each
     window costs one merge-like search and every comparison is exact.
     """
-    n_rows = len(ts_s)
     keys = index.segment * (n_rows + 1) + index.order
     out = []
-    for window in windows_s:
-        rows_below = np.searchsorted(ts_s, np.floor(ts_s) + window, side="left")
-        limits = index.segment * (n_rows + 1) + rows_below[index.order]
+    for counts in below:
+        limits = index.segment * (n_rows + 1) + counts[index.order]
         out.append(np.searchsorted(keys, limits, side="left") - 1)
     return out
 
@@ -214,7 +218,12 @@ def _fanout_occupancy(
 
 
 class BatchFeatureReader:
-    """Feature matrix of planned columns (rows in input order), as `FeatureReader` reads them."""
+    """Feature matrix of planned columns (rows in input order), as `FeatureReader` reads them.
+
+    Each kind's columns (and each fan-out pair's) are adjacent in the layout, so they are
+    computed as one block in the kind's own order and written with one scatter of whole row
+    pieces: far fewer cache misses than one scatter per column.
+    """
 
     def __init__(self, config: ScoringConfig) -> None:
         self.config = config
@@ -233,24 +242,21 @@ class BatchFeatureReader:
         """Features of every event; ``bad[kind]`` is the label-sum read per event (NaN: none)."""
         n = len(cols)
         self._ends: dict[str, list[np.ndarray]] = {}
-        x = np.zeros((n, len(self.layout.names)), order="F")  # filled column by column
-        exposure: dict[str, np.ndarray] = {}
+        self._rows_below: list[np.ndarray] | None = None
+        x = np.zeros((n, len(self.layout.names)))
         spend: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None
         for kind in self.config.kinds:
             index = indexes[kind]
             counts, spent, has_spent = _kind_counts(index, cols, self.config)
-            self._kind_columns(x, kind, index, counts, cols, observed_since_s)
-            exposure[kind] = counts[self.config.exposure_index]
+            self._kind_block(x, kind, index, counts, cols, observed_since_s, bad.get(kind))
             if kind == self.config.amount_kind and spent is not None and has_spent is not None:
                 spend = (spent, has_spent, counts[-1])
-        for kind in self.config.label_kinds:
-            self._bad_column(x, kind, indexes[kind], exposure[kind], bad.get(kind))
         for kind, target in self.config.fanout:
-            self._fanout_columns(x, kind, target, indexes[kind], cols)
-        self._event_columns(x, cols, indexes, spend)
+            self._fanout_block(x, kind, target, indexes[kind], cols)
+        self._event_block(x, cols, indexes, spend)
         return x
 
-    def _kind_columns(
+    def _kind_block(
         self,
         x: np.ndarray,
         kind: str,
@@ -258,14 +264,17 @@ class BatchFeatureReader:
         counts: Sequence[np.ndarray],
         cols: PlannedColumns,
         observed_since_s: float,
+        bad_sum: np.ndarray | None,
     ) -> None:
         order, starts = index.order, index.starts
+        if len(order) == 0:
+            return
         seen = ~starts
-        rows = order[seen]
-        for h, c in zip(self.config.half_lives_s, counts, strict=True):
-            col = self._col[f"{kind}.n_{horizon_label(h)}"]
-            value = c[seen]
-            x[rows, col] = np.where(value > 0.0, np.log1p(np.maximum(value, 0.0)), 0.0)
+        labelled = kind in self.config.label_kinds
+        width = len(counts) + (3 if labelled else 2)
+        block = np.zeros((len(order), width))
+        for j, c in enumerate(counts):
+            block[:, j] = np.where(seen & (c > 0.0), np.log1p(np.maximum(c, 0.0)), 0.0)
         first_pos = np.maximum.accumulate(np.where(starts, np.arange(len(order)), 0))
         first_s = np.floor(cols.ts_s[order[first_pos]])
         age_s = cols.ts_s[order] - first_s
@@ -273,69 +282,77 @@ class BatchFeatureReader:
         censored = (first_s < censor_before) & (age_s < self.config.censored_age_s)
         age_s = np.where(censored, self.config.censored_age_s, age_s)
         age = np.where(age_s > 0, np.log1p(np.maximum(age_s, 0.0) / 86400.0), 0.0)
-        x[rows, self._col[f"{kind}.age_d"]] = age[seen]
-        x[order[starts], self._col[f"{kind}.new"]] = 1.0
+        n = len(counts)
+        block[:, n] = np.where(seen, age, 0.0)
+        block[:, n + 1] = starts
+        if labelled:
+            exposure = counts[self.config.exposure_index]
+            block[:, n + 2] = np.where(seen, self._bad_rate(order, exposure, bad_sum), 0.0)
+        first = self._col[f"{kind}.n_{horizon_label(self.config.half_lives_s[0])}"]
+        x[order, first : first + width] = block
 
-    def _bad_column(
-        self,
-        x: np.ndarray,
-        kind: str,
-        index: KindIndex,
-        exposure: np.ndarray,
-        bad_sum: np.ndarray | None,
-    ) -> None:
-        order, seen = index.order, ~index.starts
+    def _bad_rate(
+        self, order: np.ndarray, exposure: np.ndarray, bad_sum: np.ndarray | None
+    ) -> np.ndarray:
+        """Log-odds of the Beta-smoothed fraud share minus the base log-odds (`FeatureReader`)."""
         cfg = self.config
         bad = np.zeros(len(order)) if bad_sum is None else np.nan_to_num(bad_sum[order], nan=0.0)
         bad = np.maximum(bad, 0.0)
         alpha, alpha_beta = cfg.prior_alpha, cfg.prior_alpha + cfg.prior_beta
         rate = np.minimum((alpha + bad) / (alpha_beta + np.maximum(exposure, bad)), 0.999)
-        value = np.log(rate / (1.0 - rate)) - cfg.base_logit
-        x[order[seen], self._col[f"{kind}.bad"]] = value[seen]
+        out: np.ndarray = np.log(rate / (1.0 - rate)) - cfg.base_logit
+        return out
 
-    def _fanout_columns(
+    def _fanout_block(
         self, x: np.ndarray, kind: str, target: str, index: KindIndex, cols: PlannedColumns
     ) -> None:
-        short, long_ = (horizon_label(w) for w in self.config.fanout_windows_s)
+        order = index.order
+        if len(order) == 0:
+            return
+        windows = self.config.fanout_windows_s
         ends = self._ends.get(kind)
         if ends is None:
-            ends = self._ends[kind] = recent_ends(index, cols.ts_s, self.config.fanout_windows_s)
+            if self._rows_below is None:
+                self._rows_below = rows_below(cols.ts_s, windows)
+            ends = self._ends[kind] = recent_ends(index, len(cols), self._rows_below)
         occ_short, occ_long, own_last = _fanout_occupancy(
             index, cols.buckets[target], cols.ts_s, ends
         )
-        order, seen = index.order, ~index.starts
-        rows = order[seen]
-        x[rows, self._col[f"{kind}.{target}s_{short}"]] = self._log_counts[occ_short[seen]]
-        x[rows, self._col[f"{kind}.{target}s_{long_}"]] = self._log_counts[occ_long[seen]]
+        seen = ~index.starts
         t = cols.ts_s[order]
         target_present = cols.ids[target][order] >= 0
-        unseen = (
-            seen
-            & target_present
-            & ((own_last < 0) | (own_last <= t - self.config.fanout_windows_s[1]))
-        )
-        x[order[unseen], self._col[f"{kind}.{target}_unseen"]] = 1.0
+        unseen = seen & target_present & ((own_last < 0) | (own_last <= t - windows[1]))
+        block = np.zeros((len(order), 3))
+        block[:, 0] = np.where(seen, self._log_counts[occ_short], 0.0)
+        block[:, 1] = np.where(seen, self._log_counts[occ_long], 0.0)
+        block[:, 2] = unseen
+        first = self._col[f"{kind}.{target}s_{horizon_label(windows[0])}"]
+        x[order, first : first + 3] = block
 
-    def _event_columns(
+    def _event_block(
         self,
         x: np.ndarray,
         cols: PlannedColumns,
         indexes: dict[str, KindIndex],
         spend: tuple[np.ndarray, np.ndarray, np.ndarray] | None,
     ) -> None:
-        for i, event_type in enumerate(EVENT_TYPES):
-            x[cols.type_index == i, self._col[f"type.{event_type}"]] = 1.0
+        n = len(cols)
+        first = self._col[f"type.{EVENT_TYPES[0]}"]
+        block = np.zeros((n, len(EVENT_TYPES) + 2 + len(FLAGS)))
+        for i in range(len(EVENT_TYPES)):
+            block[:, i] = cols.type_index == i
         amount = cols.amount
         paid = np.nan_to_num(amount, nan=0.0) > 0.0
-        x[paid, self._col["amount.log"]] = np.log1p(amount[paid])
+        a = len(EVENT_TYPES)
+        block[paid, a] = np.log1p(amount[paid])
         if spend is not None:
             spent, has_spent, events = spend
             index = indexes[self.config.amount_kind]
             order = index.order
-            a = amount[order]
+            paid_here = amount[order]
             ok = paid[order] & ~index.starts & has_spent & (events > 0.0) & (spent > 0.0)
             with np.errstate(divide="ignore", invalid="ignore"):
-                vs = np.log((a + 1.0) / (spent / events + 1.0))
-            x[order[ok], self._col["amount.vs_usual"]] = vs[ok]
-        for i, flag in enumerate(FLAGS):
-            x[cols.flags[:, i], self._col[f"flag.{flag}"]] = 1.0
+                vs = np.log((paid_here + 1.0) / (spent / events + 1.0))
+            block[order[ok], a + 1] = vs[ok]
+        block[:, a + 2 :] = cols.flags
+        x[:, first : first + block.shape[1]] = block
