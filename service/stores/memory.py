@@ -57,16 +57,16 @@ class MemoryStore:
         if held is not None and held[1] > t:
             return Begun(duplicate=held[0])
         self.answers[plan.event_digest] = (PENDING, t + CLAIM_TTL_S)
-        if not read:
-            return Begun()
         ttl = self.config.ttl_s
         profiles: list[Profile | None] = []
         for key in plan.identifiers:
             p = self.profiles.get(key)
             if p is not None and p.last_s is not None and t - p.last_s > ttl:
-                del self.profiles[key]
+                del self.profiles[key]  # expired (as a Redis key would), when read or not
                 p = None
             profiles.append(p)
+        if not read:
+            return Begun()
         return Begun(profiles=profiles, observed_since_s=self.observed_since_s)
 
     async def commit(
