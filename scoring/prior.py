@@ -23,7 +23,7 @@ from typing import Any
 import numpy as np
 
 from scoring.config import ScoringConfig
-from scoring.features import FeatureLayout
+from scoring.features import FeatureLayout, horizon_label
 
 Number = Any  # a float for one event, a numpy column for a batch
 
@@ -156,6 +156,7 @@ class Prior:
         self.config = config
         self.layout = FeatureLayout.of(config)
         self._index = {name: i for i, name in enumerate(self.layout.names)}
+        self._index.update(self._aliases(config))
         self.signals: list[Signal] = [
             shared_device,
             young_hub,
@@ -165,6 +166,23 @@ class Prior:
             flags,
         ]
         self.codes = [code for code, _, _ in self._run(lambda name: 0.0, SCALAR)]
+
+    def _aliases(self, config: ScoringConfig) -> dict[str, int]:
+        """Signals are written with the default horizons' names (``_1d``/``_30d`` fan-out
+        windows, ``n_1h``); these point them at the configured short and long windows and at
+        the shortest half-life, so another configuration keeps every signal working."""
+        short, long_ = (horizon_label(w) for w in config.fanout_windows_s)
+        shortest = horizon_label(min(config.half_lives_s))
+        out = {}
+        for name, i in self._index.items():
+            kind, _, stat = name.partition(".")
+            if stat.endswith(f"s_{short}"):
+                out[f"{kind}.{stat[: -len(short)]}1d"] = i
+            elif stat.endswith(f"s_{long_}"):
+                out[f"{kind}.{stat[: -len(long_)]}30d"] = i
+            elif stat == f"n_{shortest}":
+                out[f"{kind}.n_1h"] = i
+        return {alias: i for alias, i in out.items() if alias not in self._index}
 
     def _run(self, f: Callable[[str], Number], ops: Ops) -> list[tuple[str, Number, Number]]:
         return [triple for signal in self.signals for triple in signal(f, ops)]
