@@ -21,7 +21,7 @@ import numpy as np
 from scoring.batch_features import BatchFeatureReader, KindIndex, index_kind
 from scoring.batch_plan import PlannedColumns
 from scoring.config import ScoringConfig
-from scoring.decay import EPOCH_HALF_LIVES
+from scoring.decay import EPOCH_HALF_LIVES, forward_weight
 from scoring.fusion import (
     REASON_FLOOR,
     Fusion,
@@ -32,7 +32,7 @@ from scoring.fusion import (
     sigmoid_array,
 )
 from scoring.logrecord import RecordCodec
-from scoring.profile import TimeBasis, _add
+from scoring.profile import _add
 from scoring.reasons import _describe
 
 
@@ -119,22 +119,20 @@ def _label_reads(
     seg_at = np.where(present, index.segment[np.maximum(before, 0)], -1)
     sums: dict[int, dict[int, float]] = {}
     snap_seg, snap_pos, snap_entries = [], [], []
+    half_life = config.label_half_life_s
     for a, seg in zip(applications, seg_at.tolist(), strict=True):
-        if seg < 0:
-            continue
-        basis = TimeBasis.at(float(round(cols.ts_s[a.row])), config)
+        if seg < 0 or not (a.is_fraud or a.previous is True):
+            continue  # only fraud labels (or their reversal) change the fraud sums
+        # the record keeps the event's time to the second; as `TimeBasis.at(...).label_*`
+        epoch, factor = forward_weight(float(round(cols.ts_s[a.row])), half_life)
         bad = sums.setdefault(seg, {})
-        changed = False
         if a.previous is True:
-            _add(bad, basis.label_epoch, -1.0 * basis.label_factor)
-            changed = True
+            _add(bad, epoch, -1.0 * factor)
         if a.is_fraud:
-            _add(bad, basis.label_epoch, 1.0 * basis.label_factor)
-            changed = True
-        if changed:
-            snap_seg.append(seg)
-            snap_pos.append(a.position)
-            snap_entries.append(list(bad.items()))
+            _add(bad, epoch, 1.0 * factor)
+        snap_seg.append(seg)
+        snap_pos.append(a.position)
+        snap_entries.append(list(bad.items()))
     if not snap_seg:
         return out
     return _read_snapshots(cols, index, snap_seg, snap_pos, snap_entries, config)

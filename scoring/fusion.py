@@ -242,6 +242,7 @@ class OnlineModel:
         self.positives = 0
         self.negatives = 0
         self._pick = operator.itemgetter(*self.features)
+        self._zeros = [0.0] * len(self.features)
 
     def learn_one(self, inputs: Sequence[float], is_fraud: bool) -> None:
         """Learn one example (inputs in `features` order)."""
@@ -284,7 +285,9 @@ class OnlineModel:
         weights = self.regression._weights
         means = np.array(self._pick(self.scaler.means), dtype=np.float64)
         variances = np.array(self._pick(self.scaler.vars), dtype=np.float64)
-        w = np.array([weights.get(f, 0.0) for f in self.features], dtype=np.float64)
+        w = np.fromiter(
+            map(weights.get, self.features, self._zeros), np.float64, len(self.features)
+        )
         return means, variances, w, float(self.regression.intercept)
 
     @classmethod
