@@ -162,3 +162,25 @@ async def test_events_batch_on_redis_counts_duplicates(redis_url: str) -> None:
     once = math.fsum(2.0 ** (-(as_of - (T0 + n)) / (30 * DAY_S)) for n in range(5))
     assert device["events"]["30d"] == pytest.approx(once, abs=2e-6)  # duplicates undone
     assert device["first_seen"] == "2026-09-21T14:13:20Z"
+
+
+async def test_shadow_command_builds_the_report_from_the_live_log(
+    redis_url: str, tmp_path: Any, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """`emberscore shadow --from REDIS_URL` reads the live log the service wrote."""
+    from service.cli import main
+
+    decisions = ["allow", "review", "deny", "allow", "allow"]
+    async with running(redis_settings(redis_url)) as (client, app):
+        for n, current in enumerate(decisions):
+            answer = await client.post("/v1/score", json=event(n, current_decision=current))
+            assert answer.status_code == 200
+        await flush(app)
+    report = tmp_path / "live.html"
+    status = await asyncio.to_thread(main, ["shadow", "--from", redis_url, "--html", str(report)])
+    assert status == 0
+    html = report.read_text(encoding="utf-8")
+    assert "Keep a human review path" in html
+    assert "disparate impact" in html
+    summary = capsys.readouterr().out
+    assert ": 5 events," in summary  # the five logged events are the report's events
