@@ -48,7 +48,8 @@ def test_demo_table_compares_both_sides(demo: tuple[Path, str]) -> None:
     table = _table(text)
     for row in ("average precision", "ROC AUC", "recall", "precision", "attack:takeover"):
         assert row in table
-    assert "emberscore" in table and "rules" in table
+    assert "emberscore" in table
+    assert "rules" in table
 
 
 def test_backfill_then_evaluate_reproduce_the_table(
