@@ -9,7 +9,8 @@ gathered here so that callers import one name:
 - `scoring.evaluate_daily`: per-day precision of a reviewer's top-k queue, thresholds that fit a
   daily review capacity;
 - `scoring.evaluate_shadow`: catch rates per segment and the comparison of emberscore's decisions
-  with the rules in force.
+  with the rules in force;
+- `scoring.evaluate_calibration`: risk bands against fraud shares, and the Brier score.
 
 Label semantics: an event without a label counts as not fraud (common practice, no source). To
 count only labels known by a date, the caller drops later labels before calling these functions.
@@ -30,6 +31,12 @@ from scoring.evaluate_alerts import (
     at_alert_rate,
     at_threshold,
     top_mask,
+)
+from scoring.evaluate_calibration import (
+    RISK_BANDS,
+    CalibrationBand,
+    brier_score,
+    calibration_table,
 )
 from scoring.evaluate_daily import (
     CapacityThreshold,
@@ -61,6 +68,10 @@ from scoring.evaluate_shadow import (
 
 __all__ = [
     "DECISIONS",
+    "RISK_BANDS",
+    "CalibrationBand",
+    "brier_score",
+    "calibration_table",
     "AlertResult",
     "AmountSplit",
     "CapacityThreshold",

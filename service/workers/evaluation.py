@@ -100,6 +100,8 @@ class EvaluationResult:
     segment_unknown_ids: int
     rules_missing: int
     labels_rejected: int = 0
+    calibration: tuple[ev.CalibrationBand, ...] = ()
+    brier: float = float("nan")
 
 
 def side_figures(
@@ -172,6 +174,8 @@ def evaluate_tables(
         segment_rate=SEGMENT_ALERT_RATE,
         segment_unknown_ids=unknown_segments,
         rules_missing=0 if rank is None else missing_decisions(scores),
+        calibration=tuple(ev.calibration_table(risk, fraud)),
+        brier=ev.brier_score(risk, fraud),
     )
 
 
@@ -331,6 +335,23 @@ def _segment_rows(result: EvaluationResult) -> list[str]:
     return lines
 
 
+def _calibration_rows(result: EvaluationResult) -> list[str]:
+    if not result.calibration:
+        return []
+    lines = [
+        "",
+        "calibration of emberscore's risk against labelled fraud (a lower bound where labels",
+        f"miss some fraud); Brier score {result.brier:.4f}",
+        f"  {'risk band':<18}{'events':>10}{'mean risk':>12}{'labelled fraud':>16}",
+    ]
+    for band in result.calibration:
+        name = f"{band.low:.3f} - {band.high:.3f}"
+        lines.append(
+            f"  {name:<18}{band.events:>10,}{band.mean_risk:>12.4f}{band.fraud_share:>16.4f}"
+        )
+    return lines
+
+
 NOTES = (
     "notes:",
     "  An alert rate alerts exactly ceil(rate x events) events; events tied at the cut share the",
@@ -346,5 +367,6 @@ def format_table(result: EvaluationResult) -> str:
     lines = _counts_block(result)
     lines += _side_rows(result.ours, result.rules, result.top_k)
     lines += _segment_rows(result)
+    lines += _calibration_rows(result)
     lines += ["", *NOTES]
     return "\n".join(lines) + "\n"
