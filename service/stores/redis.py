@@ -3,10 +3,14 @@
 Layout (see `service.stores.redis_keys` for every key): one sorted set per identifier holding
 its `Profile` members. An event's changes are additions to forward-decay sums (ZINCRBY), a
 minimum (first seen, ZADD LT) and maxima (last seen and fan-out buckets, ZADD GT): they commute
-and need no read, so `begin` sends, in one non-transactional pipeline, the idempotency claim and
-for each identifier its read followed by its writes. Reads precede their key's writes, so they
-see the state before the event. Every command touches one key and no script or MULTI is used,
-so the same pipelines run on Redis Cluster (the client splits them by node).
+and need no read, so `begin` sends, in one round trip, the idempotency claim and for each
+identifier its read followed by its writes. Reads precede their key's writes, so they see the
+state before the event. Every command touches one key, so the layout is valid on Redis Cluster.
+On a single server each identifier's read and writes run as one server-side script on that one
+key, sent with the claim on a connection the process's requests share
+(`service.stores.redis_event`, `service.stores.redis_wire`); on a cluster they are plain
+commands in a redis-py pipeline (the client splits it by node, and runs no scripts). Both forms
+leave the same state, bit for bit.
 
 Redis adds scores in IEEE double precision, as Python does, so replaying a stream in order gives
 the same numbers as the embedded store. Two differences remain, both documented:
@@ -32,7 +36,7 @@ from service.config import Settings
 from service.stores import redis_streams as streams
 from service.stores.base import CLAIM_TTL_S, PENDING, Begun, Matured, StoreUnavailable
 from service.stores.redis_client import Client, check_server, guard, make_client
-from service.stores.redis_event import EventExchange
+from service.stores.redis_event import Claim, EventExchange, raise_first
 from service.stores.redis_keys import (
     LABEL_GROUP,
     LABEL_QUEUE_KEY,
@@ -52,6 +56,7 @@ from service.stores.redis_keys import (
     shadow_fields,
     shard_of,
 )
+from service.stores.redis_wire import Command, Wire
 from service.stores.redis_writer import Write, WriteBehind
 from service.tables import ScoreTable
 
@@ -61,6 +66,9 @@ MAX_BLOCK_MS = 5000
 """Longest wait of one `read_labels` call (it returns empty after that; call it again)."""
 WRITE_QUEUE = 100_000
 WRITE_BATCH = 500
+WRITE_LINGER_S = 0.005
+"""How long the write-behind waits for more writes before sending a batch: at a few hundred
+events a second per process, one exchange carries several events' writes instead of one."""
 
 
 class RedisStore:
@@ -93,8 +101,11 @@ class RedisStore:
         self._since_s: float | None = None
         self._next_due_s: float | None = None
         self._group_ready = False
-        self.writer = WriteBehind(self._run_writes, WRITE_QUEUE, WRITE_BATCH)
-        self.exchange = EventExchange(self._ttl_s, scripted=not settings.redis_cluster)
+        self.writer = WriteBehind(self._run_writes, WRITE_QUEUE, WRITE_BATCH, WRITE_LINGER_S)
+        single = not settings.redis_cluster  # a cluster client has no single connection to share
+        self.wire = Wire(fast) if single else None
+        self.background_wire = Wire(background) if single else None
+        self.exchange = EventExchange(self._ttl_s, self.wire)
 
     @classmethod
     async def connect(cls, settings: Settings, config: ScoringConfig) -> RedisStore:
@@ -120,32 +131,25 @@ class RedisStore:
         keys = [identifier_key(kind, digest) for kind, digest in plan.identifiers]
         writes = self.planner.event(plan)
         ask_since = self._since_s is None
-        claim_key = answer_key(plan.event_digest)
-
-        def head(pipe: Any) -> int:
-            pipe.set(claim_key, PENDING, nx=True, get=True, px=self._claim_ttl_ms)
-            if ask_since:
-                pipe.set(SINCE_KEY, repr(plan.basis.t_s), nx=True, get=True)
-            return 2 if ask_since else 1
-
-        async with guard("the event read and write", self.budget_s):
-            done = await self.exchange.run(self.fast, head, keys, writes, read)
-        claim = done.head[0]
+        claims = [Claim(answer_key(plan.event_digest), PENDING, self._claim_ttl_ms)]
         if ask_since:
-            since = done.head[1]
+            claims.append(Claim(SINCE_KEY, repr(plan.basis.t_s).encode()))
+        async with guard("the event read and write", self.budget_s):
+            done = await self.exchange.run(self.fast, claims, keys, writes, read)
+        claim = done.claims[0]
+        if ask_since:
+            since = done.claims[1]
             self._since_s = plan.basis.t_s if since is None else float(since)
         if claim is not None:
             await self._undo(keys, writes)
             return Begun(duplicate=bytes(claim))
         if not read:
             return Begun()
-        profiles = [self._profile_of(pairs) for pairs in done.before]
+        profiles = [self._profile_of(members) for members in done.before]
         return Begun(profiles=profiles, observed_since_s=self._since_s)
 
-    def _profile_of(self, pairs: list[tuple[bytes, float]]) -> Profile | None:
-        if not pairs:
-            return None
-        return Profile.from_members({m.decode(): s for m, s in pairs}, self.config)
+    def _profile_of(self, members: dict[str, float]) -> Profile | None:
+        return Profile.from_members(members, self.config) if members else None
 
     async def _undo(self, keys: list[str], writes: list[ProfileWrites]) -> None:
         """Take back a duplicate's additions (its maxima and minima change nothing)."""
@@ -165,13 +169,12 @@ class RedisStore:
         minid = self._horizon_minid()
         queued = None if mature_at_s is None else encode_maturity(mature_at_s, record)
 
-        def write(pipe: Any) -> None:
-            if answer is not None:  # the claim's short life becomes the idempotency window
-                pipe.set(answer_key(digest), answer, xx=True, px=self._answer_ttl_ms)
-            pipe.xadd(shard_key, {digest: record}, minid=minid)
-            if queued is not None:
-                pipe.xadd(MATURE_KEY, {digest: queued}, minid=minid)
-
+        write: list[Command] = []
+        if answer is not None:  # the claim's short life becomes the idempotency window
+            write.append(("SET", answer_key(digest), answer, "XX", "PX", self._answer_ttl_ms))
+        write.append(("XADD", shard_key, "MINID", "~", minid, "*", digest, record))
+        if queued is not None:
+            write.append(("XADD", MATURE_KEY, "MINID", "~", minid, "*", digest, queued))
         self.writer.submit(write)
 
     def _horizon_minid(self) -> str:
@@ -179,10 +182,14 @@ class RedisStore:
         return str(max(0, int(time.time() * 1000) - self._horizon_s * 1000))
 
     async def _run_writes(self, writes: list[Write]) -> None:
+        commands = [command for write in writes for command in write]
         async with guard("a background write", self.slow_s):
+            if self.background_wire is not None:
+                raise_first(await self.background_wire.exchange(commands))
+                return
             pipe = self.background.pipeline(transaction=False)
-            for write in writes:
-                write(pipe)
+            for command in commands:
+                pipe.execute_command(*command)
             await pipe.execute()
 
     async def flush(self) -> None:
@@ -317,11 +324,8 @@ class RedisStore:
         """
         fields = shadow_fields(event_id, ts_s, risk, decision, current_decision)
         cap = self.settings.shadow_log_max
-
-        def write(pipe: Any) -> None:
-            pipe.xadd(SHADOW_KEY, fields, maxlen=cap)
-
-        self.writer.submit(write)
+        items = [part for pair in fields.items() for part in pair]
+        self.writer.submit([("XADD", SHADOW_KEY, "MAXLEN", "~", cap, "*", *items)])
 
     async def read_shadow(self) -> ScoreTable:
         """The live shadow log, oldest first (reasons are not kept)."""
@@ -335,7 +339,7 @@ class RedisStore:
             pairs: Any = await self.background.zrange(
                 identifier_key(kind, digest), 0, -1, withscores=True
             )
-        return self._profile_of(pairs)
+        return self._profile_of({m.decode(): s for m, s in pairs})
 
     async def erase(self, kind: str, digest: bytes) -> bool:
         async with guard("an erasure", self.slow_s):
@@ -403,5 +407,8 @@ class RedisStore:
         try:
             await self.writer.close()
         finally:
+            for wire in (self.wire, self.background_wire):
+                if wire is not None:
+                    await wire.close()
             await self.fast.aclose()
             await self.background.aclose()

@@ -126,6 +126,10 @@ def reply_count(write: ProfileWrites) -> int:
     return len(write.increments) + sum(1 for part in parts if part) + 1
 
 
+STALE_MEMO = 256
+"""Sets of sums whose stale members `WritePlanner` remembers (a backfill spans many epochs)."""
+
+
 def _stale_epochs(half_life_s: float, ttl_s: float) -> range:
     """How far behind the written epoch to look for sums to drop (``range`` of offsets).
 
@@ -175,6 +179,8 @@ class WritePlanner:
             "b": _stale_epochs(config.label_half_life_s, ttl),
             "g": _stale_epochs(config.label_half_life_s, ttl),
         }
+        self._bucket_names: dict[tuple[str, int], str] = {}  # fan-out member names, made once
+        self._stale_of: dict[tuple[str, ...], tuple[str, ...]] = {}
 
     def event(self, plan: EventPlan) -> list[ProfileWrites]:
         """Writes of one event, one per identifier of the plan.
@@ -190,11 +196,17 @@ class WritePlanner:
         increments, lowest, seen = _split(base.to_members())
         stale = self._stale(increments)
         t = int(plan.basis.t_s)
+        names = self._bucket_names
         out = []
         for hits, amount in zip(plan.hits, plan.amounts, strict=True):
             highest = seen
             if hits and t > -1:  # `Profile.record` keeps a bucket only past -1 (its default)
-                highest = {**seen, **{f"{letter}{bucket}": float(t) for letter, bucket in hits}}
+                highest = dict(seen)
+                for hit in hits:
+                    name = names.get(hit)
+                    if name is None:
+                        name = names[hit] = f"{hit[0]}{hit[1]}"
+                    highest[name] = float(t)
             if amount is None:
                 out.append(ProfileWrites(increments, lowest, highest, stale))
                 continue
@@ -212,11 +224,18 @@ class WritePlanner:
         return ProfileWrites(increments, {}, {}, self._stale(increments))
 
     def _stale(self, increments: dict[str, float]) -> tuple[str, ...]:
+        names = tuple(increments)  # epochs change every few weeks: the answer is kept
+        known = self._stale_of.get(names)
+        if known is not None:
+            return known
         stale = []
-        for name in increments:
+        for name in names:
             head, _, epoch = name.partition(".")
             stale += [f"{head}.{int(epoch) - k}" for k in self._offsets[head]]
-        return tuple(stale)
+        if len(self._stale_of) >= STALE_MEMO:
+            self._stale_of.clear()
+        self._stale_of[names] = tuple(stale)
+        return self._stale_of[names]
 
 
 def encode_maturity(mature_at_s: float, record: bytes) -> bytes:
