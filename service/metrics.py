@@ -16,6 +16,7 @@ from __future__ import annotations
 import logging
 import os
 import time
+from typing import Any
 
 from prometheus_client import (
     CONTENT_TYPE_LATEST,
@@ -129,6 +130,29 @@ class Metrics:
             registry=r,
         )
 
+        self._decision_counts: dict[str, Any] = {}
+        self._latency_of: dict[tuple[str, str, int], Any] = {}
+        self._version_seen: int | None = None
+
+    def answered(self, decision: str, model_version: int) -> None:
+        """Count one score answer, and keep the model-version gauge current (written only when
+        the version changes: in multi-process mode each write goes to a shared file)."""
+        counter = self._decision_counts.get(decision)
+        if counter is None:
+            counter = self._decision_counts[decision] = self.decisions.labels(decision)
+        counter.inc()
+        if model_version != self._version_seen:
+            self._version_seen = model_version
+            self.model_version.set(model_version)
+
+    def observe_request(self, route: str, method: str, status: int, elapsed_s: float) -> None:
+        """Time one request (the labelled child is looked up once per route, method, status)."""
+        key = (route, method, status)
+        child = self._latency_of.get(key)
+        if child is None:
+            child = self._latency_of[key] = self.latency.labels(route, method, str(status))
+        child.observe(elapsed_s)
+
     def exposition(self) -> bytes:
         """The Prometheus text format of every metric (of every worker in multi-process mode)."""
         if self.multiprocess_dir is None:
@@ -173,5 +197,5 @@ class RequestMetrics:
             elapsed = time.perf_counter() - start
             route = getattr(scope.get("route"), "path", UNMATCHED_ROUTE)
             method = scope.get("method", "")
-            self.metrics.latency.labels(route, method, str(status)).observe(elapsed)
+            self.metrics.observe_request(route, method, status, elapsed)
             access_log.info("%s %s %d %.1f ms", method, route, status, elapsed * 1000)

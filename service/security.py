@@ -21,6 +21,8 @@ from fastapi.security import APIKeyHeader
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 API_KEY_HEADER = "X-API-Key"
+BODY_SCOPE_KEY = "emberscore.body"
+"""Where `BodySizeLimit` leaves the body it read, in the request's scope, for the fast lane."""
 
 api_key_header = APIKeyHeader(
     name=API_KEY_HEADER,
@@ -74,7 +76,8 @@ class BodySizeLimit:
 
     The body is read here, up to the limit, before the application sees any of it, so an
     oversize request is refused whether or not it declares its length and whatever route it
-    targets, and the application never holds more than the limit.
+    targets, and the application never holds more than the limit. The body read is replayed to
+    the application and also left in the scope (`BODY_SCOPE_KEY`).
     """
 
     def __init__(self, app: ASGIApp, max_body_bytes: int) -> None:
@@ -89,21 +92,15 @@ class BodySizeLimit:
         if declared is not None and declared > self.max_body_bytes:
             await self._refuse(send)
             return
-        chunks: list[bytes] = []
-        size = 0
-        more = True
-        while more:
-            message = await receive()
-            if message["type"] == "http.disconnect":
-                return
-            chunk = message.get("body", b"")
-            size += len(chunk)
-            if size > self.max_body_bytes:
-                await self._refuse(send)
-                return
-            chunks.append(chunk)
-            more = message.get("more_body", False)
-        await self.app(scope, _replay(b"".join(chunks), receive), send)
+        try:
+            body = await read_body(receive, self.max_body_bytes)
+        except BodyTooLarge:
+            await self._refuse(send)
+            return
+        if body is None:  # the client went away
+            return
+        scope[BODY_SCOPE_KEY] = body
+        await self.app(scope, replay(body, receive), send)
 
     async def _refuse(self, send: Send) -> None:
         body = json.dumps(
@@ -136,14 +133,37 @@ def _declared_length(scope: Scope) -> int | None:
     return None
 
 
-def _replay(body: bytes, receive: Receive) -> Receive:
+class BodyTooLarge(Exception):
+    """A request body went past the limit (reading stopped there)."""
+
+
+async def read_body(receive: Receive, limit: int | None = None) -> bytes | None:
+    """The whole request body, or None if the client disconnected first; `BodyTooLarge` past
+    ``limit`` bytes."""
+    chunks: list[bytes] = []
+    size = 0
+    while True:
+        message = await receive()
+        if message["type"] == "http.disconnect":
+            return None
+        chunk = message.get("body", b"")
+        size += len(chunk)
+        if limit is not None and size > limit:
+            raise BodyTooLarge(f"more than {limit} bytes")
+        chunks.append(chunk)
+        if not message.get("more_body", False):
+            return chunks[0] if len(chunks) == 1 else b"".join(chunks)
+
+
+def replay(body: bytes, receive: Receive) -> Receive:
+    """A ``receive`` that gives ``body`` once, then defers to the server's own."""
     sent = False
 
-    async def replay() -> Message:
+    async def replayed() -> Message:
         nonlocal sent
         if sent:
             return await receive()  # after the body: wait for the disconnect, as the server would
         sent = True
         return {"type": "http.request", "body": body, "more_body": False}
 
-    return replay
+    return replayed

@@ -1,12 +1,14 @@
 """``POST /v1/reference``: the floor under ``/v1/score`` for the service benchmark (off by default).
 
-It takes the same body (`EventIn`, the same strict parsing), the same API-key check and the same
-budget as ``/v1/score``, then makes one pipelined Redis round trip of the same size and kind as a
-scored event's (`RedisStore.begin`): a claim (SET NX GET PX), and for each identifier the event
-carries, ZRANGE followed by its writes (ZINCRBY per decay sum, ZADD LT, ZADD GT, ZREM, EXPIRE),
-built by the store's own `WritePlanner`. It does no scoring: no normalisation, no hashing with the
-service's secret, no feature reading, no model. Measuring both routes in one run gives the cost
-of scoring against this floor.
+It takes the same body (`EventIn`, the same strict parsing), the same API-key check, the same
+fast lane (`service.routes.lane`) and the same budget as ``/v1/score``, then
+makes one pipelined Redis round trip of the same size and kind as a scored event's
+(`RedisStore.begin`): a claim (SET NX GET PX), and for each identifier the event carries, its
+read and writes in the store's own form (one EVALSHA of the update script on a single server;
+ZRANGE, ZINCRBY per decay sum, ZADD LT, ZADD GT, ZREM and EXPIRE on a cluster), built by the
+store's own `WritePlanner` and sent by its own `EventExchange`. It does no scoring: no
+normalisation, no hashing with the service's secret, no feature reading, no model. Measuring both
+routes in one run gives the cost of scoring against this floor.
 
 The writes go to scratch keys (``ref{...}``, a minute to live), never to real state. Their names
 come from a keyed BLAKE2b of the raw field under a random key drawn once per process, so no raw
@@ -15,9 +17,10 @@ as the kinds it gives when valid (DESIGN.md, "Identifiers"): account 1, device 1
 e-mail 2.
 
 The application includes this router when ``EMBERSCORE_REFERENCE_ENDPOINT=true``. It needs the
-Redis store: it uses ``runtime.store.fast`` (the store's request-path client) and
-``runtime.store.planner`` (its `WritePlanner`) through the `Runtime` dependency, and answers 503
-on the embedded store or while Redis is not connected.
+Redis store: it uses ``runtime.store.fast`` (the store's request-path client),
+``runtime.store.planner`` (its `WritePlanner`) and ``runtime.store.exchange`` (its
+`EventExchange`) through the `Runtime` dependency, and answers 503 on the embedded store or while
+Redis is not connected.
 """
 
 from __future__ import annotations
@@ -27,7 +30,7 @@ import secrets
 from base64 import urlsafe_b64encode
 from typing import Any
 
-from fastapi import APIRouter, HTTPException
+from fastapi import APIRouter, HTTPException, Response
 from pydantic import BaseModel
 
 from scoring.config import KIND_LETTERS, ScoringConfig
@@ -35,6 +38,7 @@ from scoring.event import Event, EventPlan
 from scoring.profile import TimeBasis
 from service.api_models import EventIn, Message, ValidationProblems
 from service.routes.deps import ApiKey, Runtime, RuntimeDep, store_unavailable
+from service.routes.lane import JSON_TYPE
 from service.stores.base import StoreUnavailable
 
 router = APIRouter(prefix="/v1", tags=["benchmark"], dependencies=[ApiKey])
@@ -94,37 +98,27 @@ def reference_plan(event: Event, config: ScoringConfig) -> EventPlan:
     )
 
 
-def _queue(pipe: Any, plan: EventPlan, writes: list[Any]) -> None:
-    """The commands `RedisStore.begin` sends for a plan, on scratch keys."""
-    claim = "ref{i" + urlsafe_b64encode(plan.event_digest).rstrip(b"=").decode() + "}"
-    pipe.set(claim, b"", nx=True, get=True, px=SCRATCH_TTL_S * 1000)
-    for (kind, digest), write in zip(plan.identifiers, writes, strict=True):
-        key = scratch_key(kind, digest)
-        pipe.zrange(key, 0, -1, withscores=True)
-        for name, value in write.increments.items():
-            pipe.zincrby(key, value, name)
-        if write.lowest:
-            pipe.zadd(key, write.lowest, lt=True)
-        if write.highest:
-            pipe.zadd(key, write.highest, gt=True)
-        if write.stale:
-            pipe.zrem(key, *write.stale)
-        pipe.expire(key, SCRATCH_TTL_S)
+def scratch_claim_key(event_digest: bytes) -> str:
+    """The scratch key standing in for an event's claim."""
+    return "ref{i" + urlsafe_b64encode(event_digest).rstrip(b"=").decode() + "}"
 
 
-async def round_trip(client: Any, planner: Any, plan: EventPlan, budget_s: float) -> int:
+async def round_trip(store: Any, plan: EventPlan, budget_s: float) -> int:
     """One pipelined exchange with the commands of ``plan`` on scratch keys; replies received.
 
-    ``client`` is the store's request-path Redis client, ``planner`` its `WritePlanner`.
+    ``store`` is the `RedisStore`: its request-path client, `WritePlanner` and `EventExchange`
+    (which knows whether the server runs the update script) are used as `begin` uses them.
     """
-    from service.stores.redis_client import guard  # imports redis: only when Redis is in use
+    # imports redis: only when Redis is in use
+    from service.stores.redis_client import guard
+    from service.stores.redis_event import Claim
 
-    writes = planner.event(plan)
+    writes = store.planner.event(plan)
+    keys = [scratch_key(kind, digest) for kind, digest in plan.identifiers]
+    claims = [Claim(scratch_claim_key(plan.event_digest), b"", SCRATCH_TTL_S * 1000)]
     async with guard("the reference round trip", budget_s):
-        pipe = client.pipeline(transaction=False)
-        _queue(pipe, plan, writes)
-        replies = await pipe.execute()
-    return len(replies)
+        done = await store.exchange.run(store.fast, claims, keys, writes, True, SCRATCH_TTL_S)
+    return int(done.commands)
 
 
 async def _answer(runtime: Runtime, plan: EventPlan) -> int:
@@ -138,7 +132,7 @@ async def _answer(runtime: Runtime, plan: EventPlan) -> int:
     if not isinstance(store, RedisStore):  # Redis was not reachable yet
         raise store_unavailable("reference")
     try:
-        return await round_trip(store.fast, store.planner, plan, runtime.score_budget_s)
+        return await round_trip(store, plan, runtime.score_budget_s)
     except StoreUnavailable as exc:
         runtime.metrics.store_error("reference", exc)
         raise store_unavailable("reference") from exc
@@ -154,9 +148,8 @@ async def _answer(runtime: Runtime, plan: EventPlan) -> int:
         503: {"model": Message, "description": "no Redis store, or Redis unavailable"},
     },
 )
-async def reference(body: EventIn, runtime: RuntimeDep) -> ReferenceOut:
+async def reference(body: EventIn, runtime: RuntimeDep) -> Response:
     plan = reference_plan(body.to_event(), runtime.config)
     commands = await _answer(runtime, plan)
-    return ReferenceOut(
-        event_id=body.event_id, identifiers=len(plan.identifiers), commands=commands
-    )
+    out = ReferenceOut(event_id=body.event_id, identifiers=len(plan.identifiers), commands=commands)
+    return Response(out.model_dump_json(), media_type=JSON_TYPE)

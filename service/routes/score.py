@@ -5,6 +5,10 @@ out of time, the answer is, per ``on_store_failure``, either a prior-only score 
 event itself shows (``state_available: false``; "fail open") or a 503 ("fail closed"): never a
 hang. Retries of an event id get the first answer again (``duplicate: true``); a retry that
 arrives while the first request is still being scored gets a 409.
+
+A well-formed request with an accepted key reaches `score` through the fast lane
+(`service.routes.lane`); anything else through FastAPI. Either way `score` serialises the answer
+once, here, rather than have it validated again against ``response_model`` (which documents it).
 """
 
 from __future__ import annotations
@@ -13,15 +17,19 @@ import asyncio
 import contextlib
 import logging
 
-from fastapi import APIRouter, BackgroundTasks, HTTPException
+from fastapi import APIRouter, HTTPException, Response
+from pydantic import TypeAdapter
+from starlette.background import BackgroundTask
 
 from scoring.event import Event
 from service.api_models import EventIn, Message, ScoreOut, ValidationProblems
 from service.engine import AlreadyRecorded, InFlight, ScoreResult
 from service.routes.deps import ApiKey, Runtime, RuntimeDep, store_unavailable
+from service.routes.lane import JSON_TYPE
 from service.stores.base import StoreUnavailable
 
 router = APIRouter(prefix="/v1", tags=["scoring"], dependencies=[ApiKey])
+_SCORE_OUT = TypeAdapter(ScoreOut)
 log = logging.getLogger("emberscore.service")
 
 
@@ -65,17 +73,20 @@ async def _append_shadow(runtime: Runtime, event: Event, result: ScoreResult) ->
         503: {"model": Message, "description": "store unavailable (fail-closed mode)"},
     },
 )
-async def score(body: EventIn, runtime: RuntimeDep, background: BackgroundTasks) -> ScoreOut:
+async def score(body: EventIn, runtime: RuntimeDep) -> Response:
     event = body.to_event()
     result = await _score(runtime, event)
-    runtime.metrics.decisions.labels(result.decision).inc()
-    runtime.metrics.model_version.set(runtime.engine.fusion.snapshot.version)
+    runtime.metrics.answered(result.decision, runtime.engine.fusion.snapshot.version)
     shadow = (
         event.current_decision is not None
         and result.state_available
         and not result.duplicate
         and hasattr(runtime.store, "append_shadow")
     )
-    if shadow:
-        background.add_task(_append_shadow, runtime, event, result)
-    return ScoreOut.of(result)
+    task = BackgroundTask(_append_shadow, runtime, event, result) if shadow else None
+    return Response(score_json(result), media_type=JSON_TYPE, background=task)
+
+
+def score_json(result: ScoreResult) -> bytes:
+    """The answer's JSON, as FastAPI writes a ``ScoreOut`` (`pydantic` serialisation)."""
+    return _SCORE_OUT.dump_json(ScoreOut.of(result))

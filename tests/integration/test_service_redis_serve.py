@@ -17,6 +17,7 @@ from pathlib import Path
 
 import httpx
 import pytest
+from prometheus_client.mmap_dict import MmapedDict
 from prometheus_client.parser import text_string_to_metric_families
 from test_service_redis_support import SECRET, event
 
@@ -87,4 +88,89 @@ def test_two_workers_share_one_metrics_view(redis_url: str, tmp_path: Path) -> N
     assert len(writers) >= 2, output  # both worker processes wrote into the shared folder
     assert all(_decisions(text) == REQUESTS for text in scrapes)
     assert "member1@quillpost.example" not in output
+    assert process.returncode == 0
+
+
+def _serve(redis_url: str, port: int, folder: Path) -> subprocess.Popen[str]:
+    env = {k: v for k, v in os.environ.items() if not k.startswith("EMBERSCORE_")}
+    env.pop("PROMETHEUS_MULTIPROC_DIR", None)
+    env.update(
+        {
+            "EMBERSCORE_REDIS_URL": redis_url,
+            "EMBERSCORE_HASH_SECRET": SECRET,
+            "EMBERSCORE_METRICS_DIR": str(folder),
+            "EMBERSCORE_SCORE_BUDGET_MS": "5000",
+        }
+    )
+    return subprocess.Popen(
+        [sys.executable, "-m", "service.cli", "serve", "--workers", "2", "--port", str(port)],
+        cwd=ROOT,
+        env=env,
+        stdout=subprocess.PIPE,
+        stderr=subprocess.STDOUT,
+        text=True,
+    )
+
+
+def _answers_per_worker(folder: Path) -> dict[str, float]:
+    """Score answers counted by each worker process (its own file in the metrics folder)."""
+    counts: dict[str, float] = {}
+    for path in folder.glob("counter_*.db"):
+        total = 0.0
+        for key, value, *_ in MmapedDict.read_all_values_from_file(str(path)):
+            if key.startswith('["emberscore_decisions"'):
+                total += value
+        counts[path.stem.rsplit("_", 1)[-1]] = total
+    return counts
+
+
+CONNECTIONS = 48
+
+
+def test_keep_alive_connections_spread_over_both_workers(redis_url: str, tmp_path: Path) -> None:
+    """Each worker listens on a socket of its own (SO_REUSEPORT): the kernel spreads new
+    connections over them by a hash of their addresses and ports (Linux socket(7)). 48
+    connections opened at once, one request each: with a fair split each worker gets 24, and
+    fewer than 9 on either side has a probability of about 3e-6 (binomial, n=48, p=1/2)."""
+    port, folder = _free_port(), tmp_path / "metrics"
+    process = _serve(redis_url, port, folder)
+    url = f"http://127.0.0.1:{port}"
+    try:
+        _wait_alive(url, process)
+        clients = [httpx.Client(base_url=url) for _ in range(CONNECTIONS)]
+        try:
+            for n, client in enumerate(clients):  # every connection opened before any closes
+                assert client.post("/v1/score", json=event(100 + n)).status_code == 200
+        finally:
+            for client in clients:
+                client.close()
+    finally:
+        process.send_signal(signal.SIGINT)
+        output, _ = process.communicate(timeout=30)
+    per_worker = _answers_per_worker(folder)
+    assert sum(per_worker.values()) == CONNECTIONS, output
+    assert len(per_worker) == 2
+    assert min(per_worker.values()) >= 9, per_worker
+    assert process.returncode == 0
+
+
+def test_a_worker_that_dies_is_replaced(redis_url: str, tmp_path: Path) -> None:
+    port, folder = _free_port(), tmp_path / "metrics"
+    process = _serve(redis_url, port, folder)
+    url = f"http://127.0.0.1:{port}"
+    try:
+        _wait_alive(url, process)
+        workers = [int(p.stem.rsplit("_", 1)[-1]) for p in folder.glob("*.db")]
+        victim = next(pid for pid in workers if pid != process.pid)
+        os.kill(victim, signal.SIGKILL)
+        for n in range(20):  # the survivor answers meanwhile; then the replacement too
+            reply = httpx.post(
+                url + "/v1/score", json=event(200 + n), headers={"connection": "close"}
+            )
+            assert reply.status_code == 200
+            time.sleep(0.1)
+    finally:
+        process.send_signal(signal.SIGTERM)
+        output, _ = process.communicate(timeout=30)
+    assert f"worker {victim} exited" in output
     assert process.returncode == 0

@@ -24,7 +24,7 @@ from test_api_support import SECRET, event, inject, running, unavailable
 from service.cli import main
 from service.config import Settings
 from service.metrics import Metrics
-from service.workers.serve import prepare_metrics_dir, server_options
+from service.workers.serve import listening_socket, prepare_metrics_dir, server_options
 
 pytestmark = pytest.mark.anyio
 ROOT = Path(__file__).parents[2]
@@ -194,3 +194,38 @@ def test_a_metrics_folder_without_multiprocess_values_is_ignored(tmp_path: Path)
     metrics.decisions.labels("deny").inc()
     assert metrics.multiprocess_dir is None
     assert b'emberscore_decisions_total{decision="deny"} 1.0' in metrics.exposition()
+
+
+def test_workers_bind_the_same_port_each_with_a_socket_of_its_own() -> None:
+    """SO_REUSEPORT (Linux socket(7)): several sockets bound to one address and port."""
+    first = listening_socket("127.0.0.1", 0)
+    try:
+        port = first.getsockname()[1]
+        second = listening_socket("127.0.0.1", port)
+        second.close()
+    finally:
+        first.close()
+
+
+def test_workers_that_cannot_listen_stop_the_service() -> None:
+    """A port held by a socket without SO_REUSEPORT: no worker can start, serve exits 1."""
+    with socket.socket() as holder:
+        holder.bind(("127.0.0.1", 0))
+        holder.listen()
+        port = holder.getsockname()[1]
+        env = {k: v for k, v in os.environ.items() if not k.startswith("EMBERSCORE_")}
+        env.pop("PROMETHEUS_MULTIPROC_DIR", None)
+        env.update(
+            {"EMBERSCORE_HASH_SECRET": SECRET, "EMBERSCORE_REDIS_URL": "redis://127.0.0.1:1/0"}
+        )
+        done = subprocess.run(
+            [sys.executable, "-m", "service.cli", "serve", "--workers", "2", "--port", str(port)],
+            cwd=ROOT,
+            env=env,
+            capture_output=True,
+            text=True,
+            timeout=60,
+        )
+    assert done.returncode == 1
+    assert "could not start: stopping" in done.stderr
+    assert "Traceback" not in done.stderr
