@@ -218,8 +218,10 @@ def phase_steady(bench: Bench) -> None:
     print(f"load average      {load_average()} (1 minute; {os.cpu_count()} CPUs)")
     if args.workers > 1 and m.process_cpu_s and m.process_cpu_s[0] > 0.75 * m.service_cpu_s:
         print(
-            "WARNING: one service process did most of the work: the workers share one listening "
-            "socket and the client's keep-alive connections landed mostly on one of them."
+            "WARNING: one service process did most of the work: the client's keep-alive "
+            "connections landed mostly on one worker (each worker listens on a socket of its "
+            "own, and the kernel spreads connections by a hash of their ports: few connections "
+            "can still split unevenly)."
         )
 
 
