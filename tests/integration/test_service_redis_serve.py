@@ -54,24 +54,7 @@ def _wait_alive(url: str, process: subprocess.Popen[str]) -> None:
 
 def test_two_workers_share_one_metrics_view(redis_url: str, tmp_path: Path) -> None:
     port, folder = _free_port(), tmp_path / "metrics"
-    env = {k: v for k, v in os.environ.items() if not k.startswith("EMBERSCORE_")}
-    env.pop("PROMETHEUS_MULTIPROC_DIR", None)
-    env.update(
-        {
-            "EMBERSCORE_REDIS_URL": redis_url,
-            "EMBERSCORE_HASH_SECRET": SECRET,
-            "EMBERSCORE_METRICS_DIR": str(folder),
-            "EMBERSCORE_SCORE_BUDGET_MS": "5000",
-        }
-    )
-    process = subprocess.Popen(
-        [sys.executable, "-m", "service.cli", "serve", "--workers", "2", "--port", str(port)],
-        cwd=ROOT,
-        env=env,
-        stdout=subprocess.PIPE,
-        stderr=subprocess.STDOUT,
-        text=True,
-    )
+    process = _serve(redis_url, port, folder)
     url = f"http://127.0.0.1:{port}"
     try:
         _wait_alive(url, process)
