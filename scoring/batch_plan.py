@@ -54,6 +54,15 @@ def _factorise(values: Sequence[str | None]) -> tuple[np.ndarray, list[str]]:
     return codes.astype(np.int64, copy=False), encoded.dictionary.to_pylist()
 
 
+def _buckets(digests: list[bytes], m: int) -> np.ndarray:
+    """Fan-out bucket of each digest: bytes 4 to 8 read big-endian, modulo ``m`` (as
+    `Planner.plan` computes them one at a time)."""
+    if not digests:
+        return np.zeros(0, dtype=np.int64)
+    words = np.frombuffer(b"".join(digests), dtype=">u4").reshape(len(digests), -1)
+    return words[:, 1].astype(np.int64) % m
+
+
 class ColumnPlanner:
     """Plans columns of events under one configuration and hashing secret."""
 
@@ -93,10 +102,7 @@ class ColumnPlanner:
                 lookup = np.append(per_value, -1)
                 ids[kind] = lookup[codes]
                 digests[kind] = kind_digests
-                kind_buckets = np.array(
-                    [int.from_bytes(d[4:8], "big") % m for d in kind_digests] + [-1],
-                    dtype=np.int64,
-                )
+                kind_buckets = np.append(_buckets(kind_digests, m), -1)
                 buckets[kind] = kind_buckets[ids[kind]]
         for kind in self.config.kinds:
             if kind not in ids:
@@ -122,24 +128,27 @@ class ColumnPlanner:
     ) -> dict[str, tuple[np.ndarray, list[bytes]]]:
         """Per kind found in the results: each distinct raw value's key code (-1 if it has no
         key of that kind), and the digests in code order."""
-        digest = self.hasher.digest_uncached
-        per_value: dict[str, np.ndarray] = {}
+        per_value: dict[str, list[int]] = {}
         by_value: dict[str, dict[str, int]] = {}  # derived keys (networks, domains) repeat
-        codes: dict[str, dict[bytes, int]] = {}
         for i, r in enumerate(results):
             for kind, value in r.keys:
                 if kind not in tracked:
                     continue
                 seen = by_value.get(kind)
                 if seen is None:
-                    seen, codes[kind] = by_value.setdefault(kind, {}), {}
-                    per_value[kind] = np.full(len(results), -1, dtype=np.int64)
-                code = seen.get(value)
-                if code is None:
-                    kind_codes = codes[kind]
-                    code = seen[value] = kind_codes.setdefault(digest(kind, value), len(kind_codes))
-                per_value[kind][i] = code
-        return {kind: (per_value[kind], list(codes[kind])) for kind in per_value}
+                    seen = by_value[kind] = {}
+                    per_value[kind] = [-1] * len(results)
+                per_value[kind][i] = seen.setdefault(value, len(seen))
+        out = {}
+        for kind, seen in by_value.items():
+            # codes follow the digests: two values with one digest (a collision) share a code
+            codes: dict[bytes, int] = {}
+            of_value = [
+                codes.setdefault(d, len(codes)) for d in self.hasher.digest_many(kind, seen)
+            ]
+            remap = np.append(np.array(of_value, dtype=np.int64), -1)
+            out[kind] = (remap[np.array(per_value[kind], dtype=np.int64)], list(codes))
+        return out
 
     def _sampled(self, event_id: Sequence[str]) -> np.ndarray:
         """Which events the maturity learning samples (`event.maturity_sampled`, per event)."""

@@ -104,3 +104,26 @@ def test_documented_collision_bound() -> None:
     probability about ``n**2 / (2 N)`` for ``N = 2**64``): the docstring's 3e-4 at 1e8."""
     n = 100_000_000
     assert n**2 / 2 ** (8 * DIGEST_BYTES + 1) < 3e-4
+
+
+@given(
+    st.binary(min_size=1, max_size=200),
+    st.sampled_from(KINDS),
+    st.lists(values, max_size=8),
+)
+def test_digest_many_equals_hmac_sha256(secret: bytes, kind: str, texts: list[str]) -> None:
+    """The bulk digests (HMAC from precomputed key states) equal the standard library's HMAC
+    for short, block-size and longer-than-block secrets, value by value and in order."""
+    hasher = KeyHasher(secret)
+    expected = [reference(secret, f"{kind}:{t}".encode())[:DIGEST_BYTES] for t in texts]
+    assert hasher.digest_many(kind, texts) == expected
+    assert [hasher.digest_uncached(kind, t) for t in texts] == expected
+
+
+@pytest.mark.parametrize("size", [1, 31, 32, 63, 64, 65, 128, 200])
+def test_precomputed_states_around_the_block_size(size: int) -> None:
+    """Keys shorter than, equal to and longer than SHA-256's 64-byte block (RFC 2104: a longer
+    key is hashed first) give the standard library's HMAC."""
+    secret = bytes((7 + i) % 256 for i in range(size))
+    hasher = KeyHasher(secret)
+    assert hasher.digest("email", "a@b.example") == reference(secret, b"email:a@b.example")[:8]
