@@ -14,11 +14,12 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
+from scoring.batch_identifiers import column_keys
 from scoring.config import ScoringConfig
 from scoring.event import maturity_sampled
 from scoring.features import EVENT_TYPES, FLAGS
 from scoring.hashing import KeyHasher
-from scoring.identifiers import Normalised, field_normaliser
+from scoring.identifiers import field_normaliser
 
 FIELDS = ("account_id", "device_id", "ip", "phone", "email")
 _FLAG_BITS = {flag: 1 << i for i, flag in enumerate(FLAGS)}
@@ -45,13 +46,13 @@ class PlannedColumns:
         return len(self.ts_s)
 
 
-def _factorise(values: Sequence[str | None]) -> tuple[np.ndarray, list[str]]:
+def _dictionary(values: Sequence[str | None]) -> tuple[np.ndarray, pa.Array]:
     """Codes of each value (-1 for None) and the distinct values, via Arrow's dictionary
     encoding (one pass in C++ rather than a Python dictionary lookup per event)."""
     array = values if isinstance(values, pa.Array) else pa.array(values, type=pa.string())
     encoded = array.dictionary_encode()
     codes = pc.fill_null(encoded.indices, -1).to_numpy(zero_copy_only=False)
-    return codes.astype(np.int64, copy=False), encoded.dictionary.to_pylist()
+    return codes.astype(np.int64, copy=False), encoded.dictionary
 
 
 def _buckets(digests: list[bytes], m: int) -> np.ndarray:
@@ -90,17 +91,19 @@ class ColumnPlanner:
         digests: dict[str, list[bytes]] = {}
         flags = np.zeros(n, dtype=np.int64)
         for field in FIELDS:
-            codes, distinct = _factorise(fields[field])
+            codes, distinct = _dictionary(fields[field])
             normalise = field_normaliser(field, self.default_region)
-            results = [normalise(raw) for raw in distinct]
-            flag_bits = np.array(
-                [sum(_FLAG_BITS.get(f, 0) for f in r.flags) for r in results] + [0],
-                dtype=np.int64,
-            )
-            flags |= flag_bits[codes]  # code -1 picks the trailing 0
-            for kind, (per_value, kind_digests) in self._kind_codes(results, tracked).items():
-                lookup = np.append(per_value, -1)
-                ids[kind] = lookup[codes]
+            keys, results = column_keys(field, distinct, normalise)
+            flag_bits = np.zeros(len(distinct) + 1, dtype=np.int64)  # code -1 picks the last 0
+            for i, r in results:
+                if r.flags:
+                    flag_bits[i] = sum(_FLAG_BITS.get(f, 0) for f in r.flags)
+            flags |= flag_bits[codes]
+            for kind, keys_of_value in keys.items():
+                if kind not in tracked:
+                    continue
+                per_value, kind_digests = self._kind_codes(kind, keys_of_value)
+                ids[kind] = np.append(per_value, -1)[codes]
                 digests[kind] = kind_digests
                 kind_buckets = np.append(_buckets(kind_digests, m), -1)
                 buckets[kind] = kind_buckets[ids[kind]]
@@ -110,8 +113,10 @@ class ColumnPlanner:
                 buckets[kind] = np.full(n, -1, dtype=np.int64)
                 digests[kind] = []
         type_codes = {t: i for i, t in enumerate(EVENT_TYPES)}
-        type_of, type_names = _factorise(event_type)
-        type_lookup = np.array([type_codes.get(t, -1) for t in type_names] + [-1], dtype=np.int64)
+        type_of, type_names = _dictionary(event_type)
+        type_lookup = np.array(
+            [type_codes.get(t, -1) for t in type_names.to_pylist()] + [-1], dtype=np.int64
+        )
         return PlannedColumns(
             ts_s=np.asarray(ts_s, dtype=np.float64),
             type_index=type_lookup[type_of],
@@ -123,32 +128,19 @@ class ColumnPlanner:
             sampled=self._sampled(event_id),
         )
 
-    def _kind_codes(
-        self, results: list[Normalised], tracked: set[str]
-    ) -> dict[str, tuple[np.ndarray, list[bytes]]]:
-        """Per kind found in the results: each distinct raw value's key code (-1 if it has no
-        key of that kind), and the digests in code order."""
-        per_value: dict[str, list[int]] = {}
-        by_value: dict[str, dict[str, int]] = {}  # derived keys (networks, domains) repeat
-        for i, r in enumerate(results):
-            for kind, value in r.keys:
-                if kind not in tracked:
-                    continue
-                seen = by_value.get(kind)
-                if seen is None:
-                    seen = by_value[kind] = {}
-                    per_value[kind] = [-1] * len(results)
-                per_value[kind][i] = seen.setdefault(value, len(seen))
-        out = {}
-        for kind, seen in by_value.items():
-            # codes follow the digests: two values with one digest (a collision) share a code
-            codes: dict[bytes, int] = {}
-            of_value = [
-                codes.setdefault(d, len(codes)) for d in self.hasher.digest_many(kind, seen)
-            ]
-            remap = np.append(np.array(of_value, dtype=np.int64), -1)
-            out[kind] = (remap[np.array(per_value[kind], dtype=np.int64)], list(codes))
-        return out
+    def _kind_codes(self, kind: str, keys: pa.Array) -> tuple[np.ndarray, list[bytes]]:
+        """Each distinct raw value's key code (-1 if it has no key of this kind), and the
+        digests in code order (codes in order of first appearance)."""
+        encoded = keys.dictionary_encode()
+        of_key = pc.fill_null(encoded.indices, -1).to_numpy(zero_copy_only=False)
+        # codes follow the digests: two keys with one digest (a collision) share a code
+        codes: dict[bytes, int] = {}
+        distinct = encoded.dictionary.to_pylist()
+        of_digest = [
+            codes.setdefault(d, len(codes)) for d in self.hasher.digest_many(kind, distinct)
+        ]
+        remap = np.append(np.array(of_digest, dtype=np.int64), -1)
+        return remap[of_key.astype(np.int64)], list(codes)
 
     def _sampled(self, event_id: Sequence[str]) -> np.ndarray:
         """Which events the maturity learning samples (`event.maturity_sampled`, per event)."""

@@ -17,6 +17,8 @@ from __future__ import annotations
 import ipaddress
 from dataclasses import dataclass
 
+import numpy as np
+
 IPAddress = ipaddress.IPv4Address | ipaddress.IPv6Address
 
 
@@ -170,3 +172,15 @@ def special_ranges_of(value: int, version: int) -> tuple[SpecialRange, ...]:
     if value >> (_WIDTH[version] - _BUCKET_BITS[version]) not in _TOUCHED[version]:
         return ()  # fast path: no range reaches this address's leading bits
     return tuple(row for first, last, _, row in _SPANS[version] if first <= value <= last)
+
+
+def special_ipv4_mask(values: np.ndarray) -> np.ndarray:
+    """Per IPv4 address given as an integer: is it in any special-purpose range?
+
+    >>> special_ipv4_mask(np.array([0x0A000001, 0x0B16212C])).tolist()
+    [True, False]
+    """
+    out = np.zeros(len(values), dtype=bool)
+    for first, last, _, _ in _SPANS[4]:
+        out |= (values >= first) & (values <= last)
+    return out

@@ -1,0 +1,152 @@
+"""Column keys of distinct raw values (`scoring.batch_identifiers`) equal the normalisers'.
+
+The column path exists only for speed: for every value it either gives exactly the keys (and no
+flags) that the per-field normaliser gives, or leaves the value to that normaliser. Each case
+below names the rule of `scoring.identifiers` or `scoring.identifiers_ip` it touches; the
+reference is the normaliser itself.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pyarrow as pa
+import pytest
+from hypothesis import given
+from hypothesis import strategies as st
+
+from scoring.batch_identifiers import column_keys
+from scoring.batch_plan import FIELDS, ColumnPlanner
+from scoring.config import ScoringConfig
+from scoring.event import Event, Planner
+from scoring.hashing import KeyHasher
+from scoring.identifiers import field_normaliser
+
+OPAQUE_CASES = [
+    "acct-1",  # plain
+    "a",  # one character
+    "Dev 42",  # an inner blank is kept
+    " acct-1",  # leading blank: trimmed (str.strip)
+    "acct-1\t",  # trailing tab: trimmed
+    "acct\x1f",  # ASCII unit separator: str.strip trims it
+    "null",  # placeholder
+    "NULL",  # placeholder, any case
+    "n/a",  # placeholder with a slash
+    "(null)",
+    "{}",
+    "0",  # zeros: placeholder
+    "00000000-0000-0000-0000-000000000000",  # the all-zero UUID
+    "--",
+    "0-1",  # not only zeros and dashes
+    "ａｃｃｔ",  # full width: NFKC
+    "é",  # non-ASCII
+    "a\x00b",  # a control character inside
+    "x" * 256,  # longest kept whole
+    "x" * 257,  # truncated and flagged
+]  # (no lone surrogates: Arrow columns, and so the batch path, cannot hold them)
+IP_CASES = [
+    "11.22.33.44",
+    "0.0.0.0",  # special
+    "10.1.2.3",  # private-use
+    "100.64.0.1",  # shared address space
+    "192.0.0.9",
+    "255.255.255.255",
+    "1.2.3.256",  # not an address
+    "01.2.3.4",  # leading zero: not canonical
+    "1.2.3",
+    "1.2.3.4.5",
+    "1.2.3.4:80",  # port
+    " 8.8.8.8 ",  # blanks
+    "１.2.3.4",  # full width
+    "2001:db8::1",
+    "2a00:1450::1",
+    "::ffff:11.22.33.44",
+    "not an address",
+]
+
+
+def reference(field: str, values: list[str]) -> dict[str, list[str | None]]:
+    """Per kind, the key each value gets from the normaliser (None: no key of that kind)."""
+    normalise = field_normaliser(field)
+    out: dict[str, list[str | None]] = {}
+    for i, raw in enumerate(values):
+        for kind, value in normalise(raw).keys:
+            out.setdefault(kind, [None] * len(values))[i] = value
+    return out
+
+
+def check(field: str, values: list[str]) -> None:
+    distinct = list(dict.fromkeys(values))
+    keys, results = column_keys(
+        field, pa.array(distinct, type=pa.string()), field_normaliser(field)
+    )
+    got = {kind: column.to_pylist() for kind, column in keys.items()}
+    assert got == reference(field, distinct)
+    assert list(got) == list(reference(field, distinct))  # kinds in order of first appearance
+    left = {i for i, _ in results}
+    normalise = field_normaliser(field)
+    for i, raw in enumerate(distinct):
+        if i not in left:  # given by the column path: the normaliser sets no flag either
+            assert normalise(raw).flags == frozenset(), raw
+    for i, r in results:
+        assert r == normalise(distinct[i])
+
+
+@pytest.mark.parametrize("field", ["account_id", "device_id"])
+def test_opaque_cases(field: str) -> None:
+    check(field, OPAQUE_CASES)
+    for case in OPAQUE_CASES:
+        check(field, [case])
+
+
+def test_ip_cases() -> None:
+    check("ip", IP_CASES)
+    for case in IP_CASES:
+        check("ip", [case])
+
+
+@given(st.lists(st.text(max_size=12), min_size=1, max_size=20))
+def test_opaque_any_text(values: list[str]) -> None:
+    values = [v for v in values if v]  # the reader turns "" into a missing value
+    if values:
+        check("device_id", values)
+
+
+octet = st.integers(0, 300).map(str) | st.sampled_from(["00", "01", "255", "", "a"])
+
+
+@given(st.lists(st.tuples(octet, octet, octet, octet).map(".".join), min_size=1, max_size=20))
+def test_ip_any_dotted_text(values: list[str]) -> None:
+    check("ip", [v for v in values if v])
+
+
+def test_no_value_is_its_own_key_in_a_field_without_a_column_path() -> None:
+    keys, results = column_keys("email", pa.array(["Jo@Mail.Example"]), field_normaliser("email"))
+    assert keys["email"].to_pylist() == ["jo@mail.example"]
+    assert [i for i, _ in results] == [0]
+
+
+def test_planned_columns_equal_the_per_event_planner() -> None:
+    """Ids, buckets and flags of a mixed batch equal the per-event `Planner`'s digests."""
+    config = ScoringConfig()
+    hasher = KeyHasher(b"column-keys-secret")
+    n = len(OPAQUE_CASES) * 2
+    fields = {
+        "account_id": [*OPAQUE_CASES, *OPAQUE_CASES[::-1]],
+        "device_id": [*OPAQUE_CASES[::-1], *OPAQUE_CASES],
+        "ip": [IP_CASES[i % len(IP_CASES)] for i in range(n)],
+        "phone": [None] * n,
+        "email": [None if i % 3 else "Jo@Mail.Example" for i in range(n)],
+    }
+    ids = [f"e{i}" for i in range(n)]
+    ts = np.arange(n, dtype=np.float64) + 1_790_000_000.0
+    cols = ColumnPlanner(config, hasher).plan(ids, ts, ["login"] * n, np.full(n, np.nan), fields)
+    planner = Planner(config, hasher)
+    for row in range(n):
+        raw = {f: fields[f][row] for f in FIELDS}
+        plan = planner.plan(Event(ids[row], float(ts[row]), "login", **raw))
+        got = {
+            kind: cols.digests[kind][cols.ids[kind][row]]
+            for kind in config.kinds
+            if cols.ids[kind][row] >= 0
+        }
+        assert got == dict(plan.identifiers)
