@@ -87,6 +87,13 @@ NON_GEO_REGION: str = phonenumbers.REGION_CODE_FOR_NON_GEO_ENTITY
 UNKNOWN: int = PhoneNumberType.UNKNOWN
 MOBILE: int = PhoneNumberType.MOBILE
 
+# phonenumbers looks up each metadata pattern through `re.compile` on every use (a dozen and more
+# per number), and the `re` module's own cache costs more per lookup than a dictionary. The
+# library's pattern cache keeps the compiled patterns instead: bounded by the patterns of its
+# metadata, and the same patterns, so the same results.
+if hasattr(phonenumbers, "enable_pattern_cache"):  # where the installed release offers it
+    phonenumbers.enable_pattern_cache()
+
 
 @dataclass(frozen=True, slots=True)
 class _Dialled:
