@@ -344,14 +344,19 @@ def score_rows(
     fusion: Fusion,
     chunk: int = 32_768,
     progress: Callable[[int], None] | None = None,
+    params: dict[str, np.ndarray] | None = None,
 ) -> tuple[np.ndarray, list[str], list[str]]:
-    """Risk, decision and reasons of every row, each with the model state it was scored with."""
+    """Risk, decision and reasons of every row, each with the model state it was scored with.
+
+    ``params`` is `stack_versions` of ``versions`` when the caller keeps it between calls.
+    """
     n = x.shape[0]
     risk = np.empty(n)
     decisions: list[str] = []
     reasons: list[str] = []
     table = _ReasonTable(fusion)
-    params = _stack(versions, fusion)
+    if params is None:
+        params = stack_versions(versions, fusion)
     for start in range(0, n, chunk):
         stop = min(start + chunk, n)
         r, text = _score_chunk(x[start:stop], version_of[start:stop], params, fusion, table)
@@ -368,7 +373,7 @@ def score_rows(
     return risk, decisions, reasons
 
 
-def _stack(v: _Versions, fusion: Fusion) -> dict[str, np.ndarray]:
+def stack_versions(v: _Versions, fusion: Fusion) -> dict[str, np.ndarray]:
     """Every model state as rows, with what scoring derives from it (as `Fusion` does)."""
     inv_std = inverse_std(np.vstack(v.variances))
     weights = np.vstack(v.weights)

@@ -28,6 +28,7 @@ from scoring.batch import (
     run_learning,
     schedule_labels,
     score_rows,
+    stack_versions,
 )
 from scoring.batch_features import (
     BatchFeatureReader,
@@ -144,6 +145,15 @@ class LearnedVersions:
 
     versions: _Versions
     version_of: np.ndarray
+    _stacked: tuple[Fusion, dict[str, np.ndarray]] | None = dataclasses.field(
+        default=None, repr=False, compare=False
+    )
+
+    def stacked(self, fusion: Fusion) -> dict[str, np.ndarray]:
+        """`stack_versions`, built once and kept: every chunk of a run scores with it."""
+        if self._stacked is None or self._stacked[0] is not fusion:
+            self._stacked = (fusion, stack_versions(self.versions, fusion))
+        return self._stacked[1]
 
     @property
     def published(self) -> int:
@@ -220,7 +230,8 @@ def score_range(
     """
     x = prepared.x[start:stop]
     version_of = learned.version_of[start:stop]
-    return score_rows(x, learned.versions, version_of, fusion, progress=progress)
+    params = learned.stacked(fusion)
+    return score_rows(x, learned.versions, version_of, fusion, progress=progress, params=params)
 
 
 # --- final identifier state --------------------------------------------------------------------
