@@ -19,14 +19,15 @@ import pyarrow.compute as pc
 
 from scoring.identifiers import _PLACEHOLDERS, OPAQUE_MAX_CHARS
 from scoring.identifiers_base import Normalised
-from scoring.identifiers_ip import IPV4_NET_BITS
-from scoring.identifiers_ranges import special_ipv4_mask
+from scoring.identifiers_ip import _V6_FLAGS, IPV4_NET_BITS, IPV6_NET_BITS
+from scoring.identifiers_ranges import maybe_special_ipv6_mask, special_ipv4_mask
 
 _OPAQUE_KIND = {"account_id": "account", "device_id": "device"}
 # printable ASCII with no blank at either end: `str.strip` leaves it as it is
 _PLAIN_TEXT = r"^[!-~](?:[ -~]*[!-~])?$"
 _ZEROS = r"^[0\-]+$"  # as `identifiers._ZEROS` (a placeholder)
 _DOTTED_QUAD = r"^(?:0|[1-9][0-9]{0,2})(?:\.(?:0|[1-9][0-9]{0,2})){3}$"
+_PLAIN_IPV6 = r"^[23][0-9a-f]{3}(?::[1-9a-f][0-9a-f]{0,3}){7}$"
 
 KeyColumns = dict[str, pa.Array]
 """Per kind: the key of each distinct raw value (null where it has none of that kind)."""
@@ -46,8 +47,8 @@ def _opaque(kind: str, values: pa.Array) -> tuple[np.ndarray, KeyColumns]:
     return fast.to_numpy(zero_copy_only=False), {kind: values}
 
 
-def _ipv4(values: pa.Array) -> tuple[np.ndarray, KeyColumns]:
-    """`identifiers_ip._plain_ipv4` on a column: canonical dotted quads, not special."""
+def _ipv4(values: pa.Array) -> np.ndarray:
+    """Where `identifiers_ip._plain_ipv4` gives its keys: canonical dotted quads, not special."""
     shaped = pc.fill_null(pc.match_substring_regex(values, _DOTTED_QUAD), False)
     shaped_at = np.flatnonzero(shaped.to_numpy(zero_copy_only=False))
     fast = np.zeros(len(values), dtype=bool)
@@ -59,31 +60,78 @@ def _ipv4(values: pa.Array) -> tuple[np.ndarray, KeyColumns]:
         ok = np.all(octets <= 255, axis=1)
         ok[ok] = ~special_ipv4_mask(value[ok])
         fast[shaped_at[ok]] = True
-    nets = pc.replace_substring_regex(values, r"\.[0-9]+$", f".0/{IPV4_NET_BITS}")
-    return fast, {"ip": values, "ip_net": nets}
+    return fast
+
+
+def _hex_groups(groups: pa.Array) -> np.ndarray:
+    """Values of 1 to 4 lower-case hexadecimal digits (already checked), as integers."""
+    padded = pc.utf8_lpad(groups, width=4, padding="0")
+    if isinstance(padded, pa.ChunkedArray):
+        padded = padded.combine_chunks()
+    offsets = np.frombuffer(padded.buffers()[1], dtype=np.int32)
+    offsets = offsets[padded.offset : padded.offset + len(padded) + 1]
+    data = np.frombuffer(padded.buffers()[2], dtype=np.uint8)
+    chars = data[offsets[0] : offsets[-1]].reshape(-1, 4)
+    digits = _HEX_DIGIT[chars].astype(np.uint64)
+    out: np.ndarray = (
+        (digits[:, 0] << 12) | (digits[:, 1] << 8) | (digits[:, 2] << 4) | digits[:, 3]
+    )
+    return out
+
+
+def _ipv6(values: pa.Array) -> np.ndarray:
+    """Where `identifiers_ip._plain_ipv6` gives the text itself as the key: eight groups in
+    2000::/3, lower case, no leading zeros and no zero group (so nothing for RFC 5952 to
+    shorten), outside the special-purpose ranges."""
+    shaped = pc.fill_null(pc.match_substring_regex(values, _PLAIN_IPV6), False)
+    shaped_at = np.flatnonzero(shaped.to_numpy(zero_copy_only=False))
+    fast = np.zeros(len(values), dtype=bool)
+    if len(shaped_at):
+        groups = pc.list_flatten(pc.split_pattern(values.take(pa.array(shaped_at)), ":"))
+        words = _hex_groups(groups).reshape(-1, 8)
+        high = (words[:, 0] << 48) | (words[:, 1] << 32) | (words[:, 2] << 16) | words[:, 3]
+        fast[shaped_at[~maybe_special_ipv6_mask(high)]] = True
+    return fast
+
+
+_HEX_DIGIT = np.zeros(256, dtype=np.uint8)
+_HEX_DIGIT[np.frombuffer(b"0123456789abcdef", dtype=np.uint8)] = np.arange(16, dtype=np.uint8)
+
+
+def _ip(values: pa.Array) -> tuple[np.ndarray, KeyColumns, list[tuple[np.ndarray, frozenset[str]]]]:
+    """IPv4 and IPv6 values the column path takes, their keys, and the IPv6 flag."""
+    fast4, fast6 = _ipv4(values), np.zeros(len(values), dtype=bool)
+    if IPV6_NET_BITS == 64:
+        fast6 = _ipv6(values)
+    nets4 = pc.replace_substring_regex(values, r"\.[0-9]+$", f".0/{IPV4_NET_BITS}")
+    nets6 = pc.replace_substring_regex(values, r"^((?:[0-9a-f]+:){3}[0-9a-f]+):.*$", r"\1::/64")
+    nets = pc.if_else(pa.array(fast6), nets6, nets4)
+    return fast4 | fast6, {"ip": values, "ip_net": nets}, [(np.flatnonzero(fast6), _V6_FLAGS)]
 
 
 def column_keys(
     field: str,
     distinct: pa.Array,
     normalise: Callable[[str], Normalised],
-) -> tuple[KeyColumns, list[tuple[int, Normalised]]]:
+) -> tuple[KeyColumns, list[tuple[int, Normalised]], list[tuple[np.ndarray, frozenset[str]]]]:
     """Keys of every distinct raw value of one field, and the others' full results.
 
     Returns the key columns (kinds in the order the values first give them, as a loop over
-    the values would meet them) and, for the values the column path leaves alone, their
-    position and what ``normalise`` gives (their flags come from there).
+    the values would meet them); for the values the column path leaves alone, their position
+    and what ``normalise`` gives (their flags come from there); and the flags of the values the
+    column path takes, as (positions, flags) pairs.
     """
+    fast_flags: list[tuple[np.ndarray, frozenset[str]]] = []
     if field in _OPAQUE_KIND:
         fast, columns = _opaque(_OPAQUE_KIND[field], distinct)
     elif field == "ip" and IPV4_NET_BITS == 24 and len(distinct):
-        fast, columns = _ipv4(distinct)
+        fast, columns, fast_flags = _ip(distinct)
     else:
         fast, columns = np.zeros(len(distinct), dtype=bool), {}
     slow_at = np.flatnonzero(~fast)
     slow_raw = distinct.take(pa.array(slow_at, type=pa.int64())).to_pylist()
     results = [(i, normalise(raw)) for i, raw in zip(slow_at.tolist(), slow_raw, strict=True)]
-    return _merged(fast, columns, results, len(distinct)), results
+    return _merged(fast, columns, results, len(distinct)), results, fast_flags
 
 
 def _merged(

@@ -55,6 +55,10 @@ def _dictionary(values: Sequence[str | None]) -> tuple[np.ndarray, pa.Array]:
     return codes.astype(np.int64, copy=False), encoded.dictionary
 
 
+def _bits(flags: frozenset[str]) -> int:
+    return sum(_FLAG_BITS.get(f, 0) for f in flags)
+
+
 def _buckets(digests: list[bytes], m: int) -> np.ndarray:
     """Fan-out bucket of each digest: bytes 4 to 8 read big-endian, modulo ``m`` (as
     `Planner.plan` computes them one at a time)."""
@@ -93,11 +97,13 @@ class ColumnPlanner:
         for field in FIELDS:
             codes, distinct = _dictionary(fields[field])
             normalise = field_normaliser(field, self.default_region)
-            keys, results = column_keys(field, distinct, normalise)
+            keys, results, fast_flags = column_keys(field, distinct, normalise)
             flag_bits = np.zeros(len(distinct) + 1, dtype=np.int64)  # code -1 picks the last 0
             for i, r in results:
                 if r.flags:
-                    flag_bits[i] = sum(_FLAG_BITS.get(f, 0) for f in r.flags)
+                    flag_bits[i] = _bits(r.flags)
+            for at, fast in fast_flags:
+                flag_bits[at] = _bits(fast)
             flags |= flag_bits[codes]
             for kind, keys_of_value in keys.items():
                 if kind not in tracked:

@@ -184,3 +184,19 @@ def special_ipv4_mask(values: np.ndarray) -> np.ndarray:
     for first, last, _, _ in _SPANS[4]:
         out |= (values >= first) & (values <= last)
     return out
+
+
+def maybe_special_ipv6_mask(high: np.ndarray) -> np.ndarray:
+    """Per IPv6 address given by its upper 64 bits (unsigned): may it be special-purpose?
+
+    Exact for the ranges of 64 bits or wider; a narrower range marks every address of its /64,
+    so a caller that sends the marked addresses to `special_ranges_of` loses nothing.
+
+    >>> maybe_special_ipv6_mask(np.array([0x20010DB800000000, 0x2A00145000000000],
+    ...                                  dtype=np.uint64)).tolist()
+    [True, False]
+    """
+    out = np.zeros(len(high), dtype=bool)
+    for first, last, _, _ in _SPANS[6]:
+        out |= (high >= np.uint64(first >> 64)) & (high <= np.uint64(last >> 64))
+    return out

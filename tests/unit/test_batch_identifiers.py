@@ -8,6 +8,8 @@ reference is the normaliser itself.
 
 from __future__ import annotations
 
+import ipaddress
+
 import numpy as np
 import pyarrow as pa
 import pytest
@@ -59,6 +61,20 @@ IP_CASES = [
     "１.2.3.4",  # full width
     "2001:db8::1",
     "2a00:1450::1",
+    "2c03:70a8:c32:7225:f62a:b22c:238e:429d",  # eight groups, canonical as written
+    "2C03:70a8:c32:7225:f62a:b22c:238e:429d",  # upper case: RFC 5952 lowers it
+    "2c03:70a8:0c32:7225:f62a:b22c:238e:429d",  # a leading zero: dropped
+    "2c03:70a8:0:7225:f62a:b22c:238e:429d",  # one zero group: kept as 0
+    "2c03:70a8:0:0:f62a:b22c:238e:429d",  # two: shortened to ::
+    "2001:db8:1:2:3:4:5:6",  # documentation
+    "2001:1:0:0:0:0:0:1",  # pcp-anycast, a /128
+    "2001:1:0:0:0:0:0:9",  # in 2001::/23
+    "2002:a0b:c0d:1:2:3:4:5",  # 6to4
+    "3fff:1:2:3:4:5:6:7",  # documentation (RFC 9637)
+    "4000:1:2:3:4:5:6:7",  # outside 2000::/3
+    "1fff:1:2:3:4:5:6:7",
+    "2620:4f:8000:1:2:3:4:5",  # direct-delegation-as112
+    "2620:4f:8001:1:2:3:4:5",  # next to it
     "::ffff:11.22.33.44",
     "not an address",
 ]
@@ -76,17 +92,19 @@ def reference(field: str, values: list[str]) -> dict[str, list[str | None]]:
 
 def check(field: str, values: list[str]) -> None:
     distinct = list(dict.fromkeys(values))
-    keys, results = column_keys(
-        field, pa.array(distinct, type=pa.string()), field_normaliser(field)
-    )
+    column = pa.array(distinct, type=pa.string())
+    keys, results, fast_flags = column_keys(field, column, field_normaliser(field))
     got = {kind: column.to_pylist() for kind, column in keys.items()}
     assert got == reference(field, distinct)
     assert list(got) == list(reference(field, distinct))  # kinds in order of first appearance
     left = {i for i, _ in results}
+    flagged = {int(i): flags for at, flags in fast_flags for i in at}
     normalise = field_normaliser(field)
     for i, raw in enumerate(distinct):
-        if i not in left:  # given by the column path: the normaliser sets no flag either
-            assert normalise(raw).flags == frozenset(), raw
+        if i not in left:  # given by the column path: with the normaliser's flags
+            assert normalise(raw).flags == flagged.get(i, frozenset()), raw
+        else:
+            assert i not in flagged
     for i, r in results:
         assert r == normalise(distinct[i])
 
@@ -119,8 +137,34 @@ def test_ip_any_dotted_text(values: list[str]) -> None:
     check("ip", [v for v in values if v])
 
 
+hextet = st.integers(0, 0xFFFF).map(lambda g: f"{g:x}") | st.sampled_from(["0", "00", "A", ""])
+first_hextet = st.integers(0x1F00, 0x4100).map(lambda g: f"{g:x}") | st.sampled_from(["2001"])
+
+
+@given(
+    st.lists(
+        st.tuples(first_hextet, st.lists(hextet, min_size=6, max_size=8)).map(
+            lambda t: ":".join([t[0], *t[1]])
+        ),
+        min_size=1,
+        max_size=20,
+    )
+)
+def test_ip_any_colon_text(values: list[str]) -> None:
+    check("ip", values)
+
+
+@given(st.integers(0x2000 << 112, (0x4000 << 112) - 1))
+def test_ip_every_global_unicast_spelling(value: int) -> None:
+    """Full, canonical and expanded spellings of addresses in 2000::/3 (special ones too)."""
+    groups = [(value >> (112 - 16 * i)) & 0xFFFF for i in range(8)]
+    check("ip", [":".join(f"{g:x}" for g in groups), str(ipaddress.IPv6Address(value))])
+
+
 def test_no_value_is_its_own_key_in_a_field_without_a_column_path() -> None:
-    keys, results = column_keys("email", pa.array(["Jo@Mail.Example"]), field_normaliser("email"))
+    keys, results, _ = column_keys(
+        "email", pa.array(["Jo@Mail.Example"]), field_normaliser("email")
+    )
     assert keys["email"].to_pylist() == ["jo@mail.example"]
     assert [i for i, _ in results] == [0]
 
