@@ -19,6 +19,12 @@ import pyarrow.compute as pc
 
 from scoring.identifiers import _PLACEHOLDERS, OPAQUE_MAX_CHARS
 from scoring.identifiers_base import Normalised
+from scoring.identifiers_email import (
+    MAX_ADDRESS_CHARS,
+    MAX_LOCAL_OCTETS,
+    DomainInfo,
+    domain_info,
+)
 from scoring.identifiers_ip import _V6_FLAGS, IPV4_NET_BITS, IPV6_NET_BITS
 from scoring.identifiers_ranges import maybe_special_ipv6_mask, special_ipv4_mask
 
@@ -27,8 +33,10 @@ _OPAQUE_KIND = {"account_id": "account", "device_id": "device"}
 _PLAIN_TEXT = r"^[!-~](?:[ -~]*[!-~])?$"
 _ZEROS = r"^[0\-]+$"  # as `identifiers._ZEROS` (a placeholder)
 _DOTTED_QUAD = r"^(?:0|[1-9][0-9]{0,2})(?:\.(?:0|[1-9][0-9]{0,2})){3}$"
+_PLAIN_EMAIL = r"^[a-z0-9_-]+(?:\.[a-z0-9_-]+)*@[a-z0-9.-]+$"
 _PLAIN_IPV6 = r"^[23][0-9a-f]{3}(?::[1-9a-f][0-9a-f]{0,3}){7}$"
 
+Flags = frozenset[str]
 KeyColumns = dict[str, pa.Array]
 """Per kind: the key of each distinct raw value (null where it has none of that kind)."""
 
@@ -98,7 +106,7 @@ _HEX_DIGIT = np.zeros(256, dtype=np.uint8)
 _HEX_DIGIT[np.frombuffer(b"0123456789abcdef", dtype=np.uint8)] = np.arange(16, dtype=np.uint8)
 
 
-def _ip(values: pa.Array) -> tuple[np.ndarray, KeyColumns, list[tuple[np.ndarray, frozenset[str]]]]:
+def _ip(values: pa.Array) -> tuple[np.ndarray, KeyColumns, list[tuple[np.ndarray, Flags]]]:
     """IPv4 and IPv6 values the column path takes, their keys, and the IPv6 flag."""
     fast4, fast6 = _ipv4(values), np.zeros(len(values), dtype=bool)
     if IPV6_NET_BITS == 64:
@@ -109,11 +117,50 @@ def _ip(values: pa.Array) -> tuple[np.ndarray, KeyColumns, list[tuple[np.ndarray
     return fast4 | fast6, {"ip": values, "ip_net": nets}, [(np.flatnonzero(fast6), _V6_FLAGS)]
 
 
+def _email(values: pa.Array) -> tuple[np.ndarray, KeyColumns, list[tuple[np.ndarray, Flags]]]:
+    """Where `identifiers_email._normalise_email` gives the text itself as the ``email`` key:
+    lower-case ASCII with one ``@``, a dot-atom local part of letters, digits, ``_`` and ``-``
+    (no subaddress to drop) of at most 64 characters, and a domain already in the ASCII form
+    `domain_info` gives (asked once per distinct domain)."""
+    shaped = pc.and_(
+        pc.match_substring_regex(values, _PLAIN_EMAIL),
+        pc.less_equal(pc.utf8_length(values), MAX_ADDRESS_CHARS),
+    )
+    shaped = pc.and_(shaped, pc.less_equal(pc.find_substring(values, "@"), MAX_LOCAL_OCTETS))
+    shaped_at = np.flatnonzero(pc.fill_null(shaped, False).to_numpy(zero_copy_only=False))
+    n = len(values)
+    code = np.full(n, -1, dtype=np.int64)  # per value: its domain's number, -1 if not taken
+    infos: list[DomainInfo | None] = []
+    if len(shaped_at):
+        domains = pc.replace_substring_regex(values.take(pa.array(shaped_at)), "^.*@", "")
+        encoded = domains.dictionary_encode()
+        names = encoded.dictionary.to_pylist()
+        infos = [domain_info(d) for d in names]
+        same = [i is not None and i.ascii == d for i, d in zip(infos, names, strict=True)]
+        usable = np.array([*same, False])
+        of_row = encoded.indices.to_numpy(zero_copy_only=False).astype(np.int64)
+        code[shaped_at] = np.where(usable[of_row], of_row, -1)
+    fast = code >= 0
+    registrable = [None if i is None else i.registrable for i in infos] + [None]
+    columns = {
+        "email": values,
+        "email_domain": pa.array(registrable, type=pa.string()).take(
+            pa.array(np.where(fast, code, len(registrable) - 1))
+        ),
+    }
+    by_flags: dict[Flags, list[int]] = {}
+    for c, info in enumerate(infos):
+        if info is not None and info.flags:
+            by_flags.setdefault(info.flags, []).append(c)
+    flags = [(np.flatnonzero(np.isin(code, c)), f) for f, c in by_flags.items()]
+    return fast, columns, flags
+
+
 def column_keys(
     field: str,
     distinct: pa.Array,
     normalise: Callable[[str], Normalised],
-) -> tuple[KeyColumns, list[tuple[int, Normalised]], list[tuple[np.ndarray, frozenset[str]]]]:
+) -> tuple[KeyColumns, list[tuple[int, Normalised]], list[tuple[np.ndarray, Flags]]]:
     """Keys of every distinct raw value of one field, and the others' full results.
 
     Returns the key columns (kinds in the order the values first give them, as a loop over
@@ -121,11 +168,13 @@ def column_keys(
     and what ``normalise`` gives (their flags come from there); and the flags of the values the
     column path takes, as (positions, flags) pairs.
     """
-    fast_flags: list[tuple[np.ndarray, frozenset[str]]] = []
+    fast_flags: list[tuple[np.ndarray, Flags]] = []
     if field in _OPAQUE_KIND:
         fast, columns = _opaque(_OPAQUE_KIND[field], distinct)
     elif field == "ip" and IPV4_NET_BITS == 24 and len(distinct):
         fast, columns, fast_flags = _ip(distinct)
+    elif field == "email" and len(distinct):
+        fast, columns, fast_flags = _email(distinct)
     else:
         fast, columns = np.zeros(len(distinct), dtype=bool), {}
     slow_at = np.flatnonzero(~fast)
