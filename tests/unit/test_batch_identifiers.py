@@ -8,6 +8,7 @@ reference is the normaliser itself.
 
 from __future__ import annotations
 
+import dataclasses
 import ipaddress
 
 import numpy as np
@@ -19,7 +20,7 @@ from hypothesis import strategies as st
 from scoring.batch_identifiers import column_keys
 from scoring.batch_plan import FIELDS, ColumnPlanner
 from scoring.config import ScoringConfig
-from scoring.event import Event, Planner
+from scoring.event import Event, Planner, maturity_sampled
 from scoring.hashing import KeyHasher
 from scoring.identifiers import field_normaliser
 
@@ -237,3 +238,13 @@ def test_planned_columns_equal_the_per_event_planner() -> None:
             if cols.ids[kind][row] >= 0
         }
         assert got == dict(plan.identifiers)
+
+
+@given(st.lists(st.text(min_size=1, max_size=30), max_size=30), st.floats(1e-6, 1.0))
+def test_sampled_events_equal_the_per_event_draw(event_ids: list[str], rate: float) -> None:
+    """The planner's sample of events to learn once matured is `maturity_sampled`'s, event by
+    event, at any rate (the batch path computes the checksums column-wise)."""
+    config = dataclasses.replace(ScoringConfig(), negative_sample_rate=rate)
+    planner = ColumnPlanner(config, KeyHasher(b"column-keys-secret"))
+    expected = [maturity_sampled(e, rate) for e in event_ids]
+    assert planner._sampled(event_ids).tolist() == expected
