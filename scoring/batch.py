@@ -98,14 +98,34 @@ def schedule_labels(
     return applications, outcomes, pending
 
 
+def label_weights(
+    cols: PlannedColumns, applications: list[Application], config: ScoringConfig
+) -> list[tuple[int, float] | None]:
+    """Per application: the forward weight (epoch, factor) its label adds to the fraud sums, or
+    None when it leaves them alone (only fraud labels, or their reversal, change them)."""
+    half_life = config.label_half_life_s
+    ts_s = cols.ts_s
+    # the record keeps the event's time to the second; as `TimeBasis.at(...).label_*`
+    return [
+        forward_weight(float(round(ts_s[a.row])), half_life)
+        if a.is_fraud or a.previous is True
+        else None
+        for a in applications
+    ]
+
+
 def _label_reads(
     cols: PlannedColumns,
     index: KindIndex,
     ids: np.ndarray,
     applications: list[Application],
     config: ScoringConfig,
+    weights: list[tuple[int, float] | None] | None = None,
 ) -> np.ndarray:
-    """Per event: the fraud-label sum its identifier's record holds before it (NaN: none)."""
+    """Per event: the fraud-label sum its identifier's record holds before it (NaN: none).
+
+    ``weights`` is `label_weights` of the applications, when the caller reads several kinds.
+    """
     n = len(cols)
     out = np.full(n, np.nan)
     if not applications or len(index.order) == 0:
@@ -119,12 +139,12 @@ def _label_reads(
     seg_at = np.where(present, index.segment[np.maximum(before, 0)], -1)
     sums: dict[int, dict[int, float]] = {}
     snap_seg, snap_pos, snap_entries = [], [], []
-    half_life = config.label_half_life_s
-    for a, seg in zip(applications, seg_at.tolist(), strict=True):
-        if seg < 0 or not (a.is_fraud or a.previous is True):
+    if weights is None:
+        weights = label_weights(cols, applications, config)
+    for a, seg, weight in zip(applications, seg_at.tolist(), weights, strict=True):
+        if seg < 0 or weight is None:
             continue  # only fraud labels (or their reversal) change the fraud sums
-        # the record keeps the event's time to the second; as `TimeBasis.at(...).label_*`
-        epoch, factor = forward_weight(float(round(cols.ts_s[a.row])), half_life)
+        epoch, factor = weight
         bad = sums.setdefault(seg, {})
         if a.previous is True:
             _add(bad, epoch, -1.0 * factor)
@@ -544,8 +564,9 @@ def replay_columns(
     pending = 0
     if labels is not None and len(labels.event_row):
         applications, outcomes, pending = schedule_labels(ts, labels, record_ttl_s)
+    weights = label_weights(cols, applications, config)
     bad = {
-        kind: _label_reads(cols, indexes[kind], cols.ids[kind], applications, config)
+        kind: _label_reads(cols, indexes[kind], cols.ids[kind], applications, config, weights)
         for kind in config.label_kinds
     }
     x = BatchFeatureReader(config).read(cols, indexes, bad, since if since is not None else 0.0)

@@ -25,6 +25,7 @@ from scoring.batch import (
     LabelColumns,
     _label_reads,
     _Versions,
+    label_weights,
     run_learning,
     schedule_labels,
     score_rows,
@@ -107,8 +108,10 @@ def prepare_replay(
     pending = 0
     if labels is not None and len(labels.event_row):
         applications, outcomes, pending = schedule_labels(ts, labels, record_ttl_s)
+    weights = label_weights(cols, applications, config)
     bad = {
-        kind: _bad_reads(cols, indexes, applications, config, kind) for kind in config.label_kinds
+        kind: _bad_reads(cols, indexes, applications, config, kind, weights)
+        for kind in config.label_kinds
     }
     x = BatchFeatureReader(config).read(cols, indexes, bad, since if since is not None else 0.0)
     return PreparedReplay(x, applications, outcomes, pending)
@@ -120,11 +123,12 @@ def _bad_reads(
     applications: list[Application],
     config: ScoringConfig,
     kind: str,
+    weights: list[tuple[int, float] | None],
 ) -> np.ndarray:
     """`_label_reads`; no reads (NaN) for a kind no event carries, which it cannot index."""
     if len(indexes[kind].order) == 0:
         return np.full(len(cols), np.nan)
-    return _label_reads(cols, indexes[kind], cols.ids[kind], applications, config)
+    return _label_reads(cols, indexes[kind], cols.ids[kind], applications, config, weights)
 
 
 @dataclass
