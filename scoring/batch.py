@@ -102,7 +102,14 @@ def label_weights(
     cols: PlannedColumns, applications: list[Application], config: ScoringConfig
 ) -> list[tuple[int, float] | None]:
     """Per application: the forward weight (epoch, factor) its label adds to the fraud sums, or
-    None when it leaves them alone (only fraud labels, or their reversal, change them)."""
+    None when it leaves them alone (only fraud labels, or their reversal, change them).
+
+    >>> from scoring.batch_state import _example_columns
+    >>> cols, config = _example_columns()
+    >>> label_weights(cols, [Application(2, 0, False, None), Application(2, 0, True, False)],
+    ...               config)[0] is None
+    True
+    """
     half_life = config.label_half_life_s
     ts_s = cols.ts_s
     # the record keeps the event's time to the second; as `TimeBasis.at(...).label_*`
@@ -394,7 +401,13 @@ def score_rows(
 
 
 def stack_versions(v: _Versions, fusion: Fusion) -> dict[str, np.ndarray]:
-    """Every model state as rows, with what scoring derives from it (as `Fusion` does)."""
+    """Every model state as rows, with what scoring derives from it (as `Fusion` does).
+
+    >>> versions = _Versions()
+    >>> versions.add(Fusion(ScoringConfig()))
+    >>> stack_versions(versions, Fusion(ScoringConfig()))["means"].shape[0]
+    1
+    """
     inv_std = inverse_std(np.vstack(v.variances))
     weights = np.vstack(v.weights)
     return {

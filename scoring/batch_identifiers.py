@@ -167,6 +167,12 @@ def column_keys(
     the values would meet them); for the values the column path leaves alone, their position
     and what ``normalise`` gives (their flags come from there); and the flags of the values the
     column path takes, as (positions, flags) pairs.
+
+    >>> from scoring.identifiers import field_normaliser
+    >>> raw = pa.array(["11.22.33.44", " 11.22.33.44", "10.0.0.1"])
+    >>> keys, left, flags = column_keys("ip", raw, field_normaliser("ip"))
+    >>> keys["ip_net"].to_pylist(), [i for i, _ in left]  # blanks and a private address left
+    (['11.22.33.0/24', '11.22.33.0/24', None], [1, 2])
     """
     fast_flags: list[tuple[np.ndarray, Flags]] = []
     if field in _OPAQUE_KIND:
