@@ -35,6 +35,7 @@ class KindIndex:
     segment: np.ndarray  # per position in `order`: dense segment id
     starts: np.ndarray  # per position in `order`: first event of its segment
     seg_of_event: np.ndarray  # per event (input order): segment id, -1 when absent
+    ts_s: np.ndarray  # per position in `order`: the event's time (gathered once, read often)
 
 
 def index_kind(ids: np.ndarray, ts_s: np.ndarray, ttl_s: float) -> KindIndex:
@@ -51,7 +52,7 @@ def index_kind(ids: np.ndarray, ts_s: np.ndarray, ttl_s: float) -> KindIndex:
     segment = np.cumsum(starts) - 1
     seg_of_event = np.full(len(ids), -1, dtype=np.int64)
     seg_of_event[order] = segment
-    return KindIndex(order, segment, starts, seg_of_event)
+    return KindIndex(order, segment, starts, seg_of_event, t)
 
 
 def _grouped(keys: np.ndarray, positions: np.ndarray) -> np.ndarray:
@@ -144,7 +145,7 @@ def _kind_counts(
     index: KindIndex, cols: PlannedColumns, config: ScoringConfig
 ) -> tuple[list[np.ndarray], np.ndarray | None, np.ndarray | None]:
     """Counts per half-life (index order) and, for the amount kind, spend and has-spent."""
-    ts = cols.ts_s[index.order]
+    ts = index.ts_s
     counts = []
     spent = has_spent = None
     last = len(config.half_lives_s) - 1
@@ -201,13 +202,12 @@ def _covered(
 def _fanout_occupancy(
     index: KindIndex,
     target_buckets: np.ndarray,
-    ts_s: np.ndarray,
     ends: Sequence[np.ndarray],
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Occupied buckets in both windows, and when the target's own bucket was last hit (-1)."""
     order = index.order
     n = len(order)
-    t_int = np.floor(ts_s[order])
+    t_int = np.floor(index.ts_s)
     tb = target_buckets[order]
     own_last = np.full(n, -1.0)
     hits = np.flatnonzero(tb >= 0)
@@ -288,8 +288,8 @@ class BatchFeatureReader:
         for j, c in enumerate(counts):
             block[:, j] = np.where(seen & (c > 0.0), np.log1p(np.maximum(c, 0.0)), 0.0)
         first_pos = np.maximum.accumulate(np.where(starts, np.arange(len(order)), 0))
-        first_s = np.floor(cols.ts_s[order[first_pos]])
-        age_s = cols.ts_s[order] - first_s
+        first_s = np.floor(index.ts_s[first_pos])
+        age_s = index.ts_s - first_s
         censor_before = observed_since_s + self.config.warmup_s
         censored = (first_s < censor_before) & (age_s < self.config.censored_age_s)
         age_s = np.where(censored, self.config.censored_age_s, age_s)
@@ -327,11 +327,9 @@ class BatchFeatureReader:
             if self._rows_below is None:
                 self._rows_below = rows_below(cols.ts_s, windows)
             ends = self._ends[kind] = recent_ends(index, len(cols), self._rows_below)
-        occ_short, occ_long, own_last = _fanout_occupancy(
-            index, cols.buckets[target], cols.ts_s, ends
-        )
+        occ_short, occ_long, own_last = _fanout_occupancy(index, cols.buckets[target], ends)
         seen = ~index.starts
-        t = cols.ts_s[order]
+        t = index.ts_s
         target_present = cols.ids[target][order] >= 0
         unseen = seen & target_present & ((own_last < 0) | (own_last <= t - windows[1]))
         block = np.zeros((len(order), 3))
