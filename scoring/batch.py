@@ -550,23 +550,44 @@ def _reason_texts(
     return ["; ".join(p for p in parts if p) for parts in zip(*words, strict=True)]
 
 
-def replay_columns(
+@dataclass
+class PreparedReplay:
+    """What learning and scoring need and the model does not change (`prepare_replay`).
+
+    ``x`` is the feature matrix (rows in input order), ``applications`` the labels that apply and
+    where, ``outcomes`` the count of each label outcome, ``labels_pending`` the labels that
+    arrive after the last event.
+
+    Examples
+    --------
+    >>> empty = PreparedReplay(np.zeros((0, 3)), [], {}, 0)
+    >>> empty.x.shape, empty.labels_pending
+    ((0, 3), 0)
+    """
+
+    x: np.ndarray
+    applications: list[Application]
+    outcomes: dict[str, int]
+    labels_pending: int
+
+
+def prepare_replay(
     cols: PlannedColumns,
     labels: LabelColumns | None,
-    fusion: Fusion,
-    model: OnlineModel | None,
+    config: ScoringConfig,
     *,
-    observed_since_s: float | None = None,
     record_ttl_s: float,
-    progress: Callable[[int], None] | None = None,
-) -> BatchResult:
-    """Score every event of a time-sorted history as the per-event engine would.
+    observed_since_s: float | None = None,
+) -> PreparedReplay:
+    """Label schedule, label reads and features of a time-sorted history (`replay_columns`'s
+    first half).
 
-    ``model`` is the learner's river model (it learns in place); None scores with ``fusion``'s
-    current snapshot, frozen. Labels for rows that are not yet scored when they arrive, or whose
-    record has expired, are counted as unknown, as the live learner would.
+    >>> from scoring.batch_state import _example_columns
+    >>> cols, config = _example_columns()
+    >>> prepared = prepare_replay(cols, None, config, record_ttl_s=60 * 86400.0)
+    >>> prepared.x.shape[0], prepared.applications, prepared.labels_pending
+    (3, [], 0)
     """
-    config = fusion.config
     ts = cols.ts_s
     if len(ts) > 1 and np.any(np.diff(ts) < 0):
         raise ValueError("events must be sorted by time for a point-in-time replay")
@@ -583,6 +604,30 @@ def replay_columns(
         for kind in config.label_kinds
     }
     x = BatchFeatureReader(config).read(cols, indexes, bad, since if since is not None else 0.0)
+    return PreparedReplay(x, applications, outcomes, pending)
+
+
+def replay_columns(
+    cols: PlannedColumns,
+    labels: LabelColumns | None,
+    fusion: Fusion,
+    model: OnlineModel | None,
+    *,
+    observed_since_s: float | None = None,
+    record_ttl_s: float,
+    progress: Callable[[int], None] | None = None,
+) -> BatchResult:
+    """Score every event of a time-sorted history as the per-event engine would.
+
+    ``model`` is the learner's river model (it learns in place); None scores with ``fusion``'s
+    current snapshot, frozen. Labels for rows that are not yet scored when they arrive, or whose
+    record has expired, are counted as unknown, as the live learner would.
+    """
+    prepared = prepare_replay(
+        cols, labels, fusion.config, record_ttl_s=record_ttl_s, observed_since_s=observed_since_s
+    )
+    x, applications = prepared.x, prepared.applications
     versions, version_of = run_learning(x, cols, applications, fusion, model, record_ttl_s)
     risk, decisions, reasons = score_rows(x, versions, version_of, fusion, progress=progress)
+    outcomes, pending = prepared.outcomes, prepared.labels_pending
     return BatchResult(risk, decisions, reasons, outcomes, pending, len(versions.number) - 1)

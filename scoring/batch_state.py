@@ -1,11 +1,12 @@
 """The batch path in stages, and the identifier state a replayed history ends with.
 
 `scoring.batch.replay_columns` runs a whole history in one call. A long backfill wants to stop and
-resume, so this module offers the same work as three stages whose outputs can be kept between
-runs: `prepare_replay` (label schedule, label reads and the feature matrix; nothing here depends
-on the model), `learn_versions` (the learner's order of learning, every published model state)
-and `score_range` (any slice of rows). Run back to back they give exactly what `replay_columns`
-gives; they only call the batch path's own functions, so there is no second copy of the maths.
+resume, so the work comes as three stages whose outputs can be kept between runs:
+`scoring.batch.prepare_replay` (label schedule, label reads and the feature matrix; nothing there
+depends on the model), then this module's `learn_versions` (the learner's order of learning,
+every published model state) and `score_range` (any slice of rows). Run back to back they give
+exactly what `replay_columns` gives; they only call the batch path's own functions, so there is
+no second copy of the maths.
 
 `final_profiles` gives the `Profile` of every identifier still alive at the end of the history,
 as the embedded store holds it after the per-event replay of the same stream, so that a new
@@ -22,17 +23,13 @@ import numpy as np
 
 from scoring.batch import (
     Application,
-    LabelColumns,
-    _label_reads,
+    PreparedReplay,
     _Versions,
-    label_weights,
     run_learning,
-    schedule_labels,
     score_rows,
     stack_versions,
 )
 from scoring.batch_features import (
-    BatchFeatureReader,
     KindIndex,
     epoch_factors,
     index_kind,
@@ -62,76 +59,6 @@ def _example_columns() -> tuple[PlannedColumns, ScoringConfig]:
 
 
 @dataclass
-class PreparedReplay:
-    """What learning and scoring need and the model does not change (`prepare_replay`).
-
-    ``x`` is the feature matrix (rows in input order), ``applications`` the labels that apply and
-    where, ``outcomes`` the count of each label outcome, ``labels_pending`` the labels that
-    arrive after the last event.
-
-    Examples
-    --------
-    >>> empty = PreparedReplay(np.zeros((0, 3)), [], {}, 0)
-    >>> empty.x.shape, empty.labels_pending
-    ((0, 3), 0)
-    """
-
-    x: np.ndarray
-    applications: list[Application]
-    outcomes: dict[str, int]
-    labels_pending: int
-
-
-def prepare_replay(
-    cols: PlannedColumns,
-    labels: LabelColumns | None,
-    config: ScoringConfig,
-    *,
-    record_ttl_s: float,
-    observed_since_s: float | None = None,
-) -> PreparedReplay:
-    """Label schedule, label reads and features of a time-sorted history (`replay_columns`'s
-    first half).
-
-    >>> cols, config = _example_columns()
-    >>> prepared = prepare_replay(cols, None, config, record_ttl_s=60 * 86400.0)
-    >>> prepared.x.shape[0], prepared.applications, prepared.labels_pending
-    (3, [], 0)
-    """
-    ts = cols.ts_s
-    if len(ts) > 1 and np.any(np.diff(ts) < 0):
-        raise ValueError("events must be sorted by time for a point-in-time replay")
-    since = float(ts[0]) if observed_since_s is None and len(ts) else observed_since_s
-    indexes = {kind: index_kind(cols.ids[kind], ts, config.ttl_s) for kind in config.kinds}
-    applications: list[Application] = []
-    outcomes: dict[str, int] = {}
-    pending = 0
-    if labels is not None and len(labels.event_row):
-        applications, outcomes, pending = schedule_labels(ts, labels, record_ttl_s)
-    weights = label_weights(cols, applications, config)
-    bad = {
-        kind: _bad_reads(cols, indexes, applications, config, kind, weights)
-        for kind in config.label_kinds
-    }
-    x = BatchFeatureReader(config).read(cols, indexes, bad, since if since is not None else 0.0)
-    return PreparedReplay(x, applications, outcomes, pending)
-
-
-def _bad_reads(
-    cols: PlannedColumns,
-    indexes: dict[str, KindIndex],
-    applications: list[Application],
-    config: ScoringConfig,
-    kind: str,
-    weights: list[tuple[int, float] | None],
-) -> np.ndarray:
-    """`_label_reads`; no reads (NaN) for a kind no event carries, which it cannot index."""
-    if len(indexes[kind].order) == 0:
-        return np.full(len(cols), np.nan)
-    return _label_reads(cols, indexes[kind], cols.ids[kind], applications, config, weights)
-
-
-@dataclass
 class LearnedVersions:
     """Every model state published during the history, and which one scored each row.
 
@@ -141,6 +68,7 @@ class LearnedVersions:
     Examples
     --------
     >>> cols, config = _example_columns()
+    >>> from scoring.batch import prepare_replay
     >>> prepared = prepare_replay(cols, None, config, record_ttl_s=86400.0)
     >>> learned = learn_versions(prepared, cols, Fusion(config), None, record_ttl_s=86400.0)
     >>> learned.published, learned.version_of.tolist()   # frozen: the starting state only
@@ -202,6 +130,7 @@ def learn_versions(
     ``fusion`` ends on the last published snapshot, as in `replay_columns`.
 
     >>> cols, config = _example_columns()
+    >>> from scoring.batch import prepare_replay
     >>> prepared = prepare_replay(cols, None, config, record_ttl_s=60 * 86400.0)
     >>> learn_versions(prepared, cols, Fusion(config), None, record_ttl_s=60 * 86400.0).published
     0
@@ -226,6 +155,7 @@ def score_range(
 
     >>> cols, config = _example_columns()
     >>> fusion = Fusion(config)
+    >>> from scoring.batch import prepare_replay
     >>> prepared = prepare_replay(cols, None, config, record_ttl_s=60 * 86400.0)
     >>> learned = learn_versions(prepared, cols, fusion, None, record_ttl_s=60 * 86400.0)
     >>> risk, decisions, reasons = score_range(prepared, learned, fusion, 1, 3)

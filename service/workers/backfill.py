@@ -27,16 +27,9 @@ from pathlib import Path
 
 import numpy as np
 
-from scoring.batch import LabelColumns, schedule_labels
+from scoring.batch import LabelColumns, PreparedReplay, prepare_replay, schedule_labels
 from scoring.batch_plan import ColumnPlanner, PlannedColumns
-from scoring.batch_state import (
-    LearnedVersions,
-    PreparedReplay,
-    final_profiles,
-    learn_versions,
-    prepare_replay,
-    score_range,
-)
+from scoring.batch_state import LearnedVersions, final_profiles, learn_versions, score_range
 from scoring.fusion import Fusion, ModelSnapshot, OnlineModel, model_features
 from scoring.hashing import KeyHasher
 from service.cli import CommandError

@@ -24,15 +24,9 @@ import numpy as np
 import pytest
 from test_backfill_support import SHORT_LIVES, per_event_replay, reference, scenario, settings
 
-from scoring.batch import LabelColumns, replay_columns
+from scoring.batch import LabelColumns, prepare_replay, replay_columns
 from scoring.batch_plan import ColumnPlanner, PlannedColumns
-from scoring.batch_state import (
-    LearnedVersions,
-    final_profiles,
-    learn_versions,
-    prepare_replay,
-    score_range,
-)
+from scoring.batch_state import LearnedVersions, final_profiles, learn_versions, score_range
 from scoring.config import ScoringConfig
 from scoring.decay import brute_force_decayed_sum
 from scoring.fusion import Fusion, OnlineModel, model_features
