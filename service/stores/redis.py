@@ -71,6 +71,17 @@ WRITE_LINGER_S = 0.005
 events a second per process, one exchange carries several events' writes instead of one."""
 
 
+def remaining_ttl_s(ttl_s: float, last_s: int | None, now_s: float) -> int:
+    """Whole seconds of lifetime a record has left at ``now_s`` (at least 1), as the live
+    store's TTL would stand then.
+
+    >>> remaining_ttl_s(7_776_000.0, 1_000, 1_000 + 86_400.0)
+    7689600
+    """
+    used = 0.0 if last_s is None else now_s - last_s
+    return max(1, math.ceil(ttl_s - used))
+
+
 class RedisStore:
     """`StateStore` on Redis (a single server or a cluster); build it with `connect`.
 
@@ -346,21 +357,22 @@ class RedisStore:
             return bool(await self.background.delete(identifier_key(kind, digest)))
 
     async def warm(
-        self, profiles: Iterable[tuple[str, bytes, Profile]], ttl_s: float, batch: int = 1000
+        self, profiles: Iterable[tuple[str, bytes, Profile]], now_s: float, batch: int = 1000
     ) -> int:
-        """Write whole profiles (replacing what a key held), ``batch`` per pipeline; the count."""
+        """Write whole profiles (replacing what a key held), ``batch`` per pipeline, each with
+        the lifetime it has left at ``now_s`` (`remaining_ttl_s`); the count written."""
         written = 0
         chunk: list[tuple[str, bytes, Profile]] = []
         for item in profiles:
             chunk.append(item)
             if len(chunk) >= batch:
-                written += await self._warm_batch(chunk, ttl_s)
+                written += await self._warm_batch(chunk, now_s)
                 chunk = []
         if chunk:
-            written += await self._warm_batch(chunk, ttl_s)
+            written += await self._warm_batch(chunk, now_s)
         return written
 
-    async def _warm_batch(self, chunk: list[tuple[str, bytes, Profile]], ttl_s: float) -> int:
+    async def _warm_batch(self, chunk: list[tuple[str, bytes, Profile]], now_s: float) -> int:
         written = 0
         async with guard("a warm-up write", self.slow_s):
             pipe = self.background.pipeline(transaction=False)
@@ -371,7 +383,7 @@ class RedisStore:
                 key = identifier_key(kind, digest)
                 pipe.delete(key)
                 pipe.zadd(key, members)
-                pipe.expire(key, max(1, math.ceil(ttl_s)))
+                pipe.expire(key, remaining_ttl_s(self.config.ttl_s, profile.last_s, now_s))
                 written += 1
             await pipe.execute()
         return written

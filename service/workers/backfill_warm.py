@@ -14,10 +14,8 @@ arrives after the warm-up for an event of the history is reported unknown by the
 from __future__ import annotations
 
 import asyncio
-import math
-from collections.abc import Iterable, Iterator
+from collections.abc import Iterable
 from dataclasses import dataclass
-from typing import Any
 
 from scoring.config import ScoringConfig
 from scoring.fusion import ModelSnapshot
@@ -25,7 +23,7 @@ from scoring.profile import Profile
 from service.config import Settings
 from service.stores.base import StoreUnavailable
 from service.stores.redis_client import guard
-from service.stores.redis_keys import SINCE_KEY, identifier_key
+from service.stores.redis_keys import SINCE_KEY
 
 WARM_BATCH = 1000
 
@@ -43,54 +41,6 @@ class WarmResult:
     observed_since_s: float
 
 
-def remaining_ttl_s(ttl_s: float, last_s: int | None, now_s: float) -> int:
-    """Whole seconds of lifetime a record has left at ``now_s`` (at least 1).
-
-    >>> remaining_ttl_s(7_776_000.0, 1_000, 1_000 + 86_400.0)
-    7689600
-    """
-    used = 0.0 if last_s is None else now_s - last_s
-    return max(1, math.ceil(ttl_s - used))
-
-
-def _batches(
-    profiles: Iterable[tuple[str, bytes, Profile]], size: int
-) -> Iterator[list[tuple[str, bytes, Profile]]]:
-    chunk: list[tuple[str, bytes, Profile]] = []
-    for item in profiles:
-        chunk.append(item)
-        if len(chunk) >= size:
-            yield chunk
-            chunk = []
-    if chunk:
-        yield chunk
-
-
-async def _write_profiles(
-    client: Any,
-    profiles: Iterable[tuple[str, bytes, Profile]],
-    config: ScoringConfig,
-    now_s: float,
-    timeout_s: float,
-) -> int:
-    """Replace each key with its profile and the lifetime it has left; the count written."""
-    written = 0
-    for chunk in _batches(profiles, WARM_BATCH):
-        pipe = client.pipeline(transaction=False)
-        for kind, digest, profile in chunk:
-            members = profile.to_members()
-            if not members:
-                continue
-            key = identifier_key(kind, digest)
-            pipe.delete(key)
-            pipe.zadd(key, members)
-            pipe.expire(key, remaining_ttl_s(config.ttl_s, profile.last_s, now_s))
-            written += 1
-        async with guard("a warm-up write", timeout_s):
-            await pipe.execute()
-    return written
-
-
 async def _warm(
     settings: Settings,
     config: ScoringConfig,
@@ -103,7 +53,7 @@ async def _warm(
 
     store = await RedisStore.connect(settings, config)
     try:
-        count = await _write_profiles(store.background, profiles, config, now_s, store.slow_s)
+        count = await store.warm(profiles, now_s, WARM_BATCH)
         await store.save_snapshot(snapshot.to_bytes(), snapshot.version)
         async with guard("the observed-since write", store.slow_s):
             await store.background.set(SINCE_KEY, repr(float(since_s)))

@@ -327,7 +327,7 @@ def test_snapshot_record_erase_and_since(kit: Any, redis_url: str) -> None:
 
 
 def test_warm_writes_whole_profiles(kit: Any, redis_url: str) -> None:
-    """Profiles computed elsewhere (the backfill) load as they are, with the lifetime given."""
+    """Profiles computed elsewhere (the backfill) load as they are, with the lifetime left."""
     settings = kit.settings(redis_url)
     memory = kit.memory_store(settings)
     scenario = kit.world(1_000, seed=8)
@@ -339,17 +339,22 @@ def test_warm_writes_whole_profiles(kit: Any, redis_url: str) -> None:
 
     asyncio.run(fill())
     items = [(kind, digest, p) for (kind, digest), p in memory.profiles.items()]
+    ttl_s = settings.scoring_config().ttl_s
+    oldest = min(range(len(items)), key=lambda i: items[i][2].last_s or 0)
+    last_s = items[oldest][2].last_s
+    assert last_s is not None
+    now_s = last_s + ttl_s - 3_600.0  # the least recent profile has 3,600 s left, others more
 
     async def body(store: RedisStore, settings: Any) -> int:
-        written = await store.warm(items, 3_600.0, batch=100)
-        assert await store.warm(items[:10], 3_600.0) == 10  # replaces, does not add
+        written = await store.warm(items, now_s, batch=100)
+        assert await store.warm(items[:10], now_s) == 10  # replaces, does not add
         for kind, digest, p in items:
             assert await store.profile(kind, digest) == p
         return written
 
     assert run(kit, redis_url, body) == len(items)
     with redis.Redis.from_url(redis_url) as c:
-        kind, digest, _ = items[0]
+        kind, digest, _ = items[oldest]
         assert 3_500 < c.ttl(identifier_key(kind, digest)) <= 3_600
 
 
