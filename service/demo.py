@@ -15,7 +15,7 @@ from pathlib import Path
 
 import numpy as np
 
-from scoring.batch import LabelColumns, replay_columns
+from scoring.batch import replay_columns
 from scoring.batch_plan import ColumnPlanner
 from scoring.fusion import Fusion, OnlineModel, model_features
 from scoring.hashing import KeyHasher
@@ -23,6 +23,7 @@ from service.config import Settings
 from service.files import write_events, write_labels, write_scores
 from service.scenario import ScenarioParams, generate
 from service.tables import EventTable, LabelTable, ScoreTable
+from service.workers.backfill_inputs import label_columns, plan_events
 from service.workers.evaluation import evaluate_files, format_table
 
 CAUTION = (
@@ -59,29 +60,12 @@ def replay_tables(
     config = settings.scoring_config()
     started = time.perf_counter()
     planner = ColumnPlanner(config, KeyHasher(settings.secret_bytes()), settings.default_region)
-    columns = planner.plan(
-        events.event_id,
-        events.ts_s,
-        events.type,
-        events.amount,
-        {
-            "account_id": events.account_id,
-            "device_id": events.device_id,
-            "ip": events.ip,
-            "phone": events.phone,
-            "email": events.email,
-        },
-    )
-    row = {event_id: i for i, event_id in enumerate(events.event_id)}
-    label_columns = LabelColumns(
-        np.array([row.get(e, -1) for e in labels.event_id], dtype=np.int64),
-        labels.labeled_at_s,
-        labels.is_fraud,
-    )
+    columns = plan_events(planner, events)
+    label_cols, _ = label_columns(events, labels)
     fusion = Fusion(config)
     model = OnlineModel(model_features(fusion.layout), config.learning_rate, config.l2)
     result = replay_columns(
-        columns, label_columns, fusion, model, record_ttl_s=settings.label_horizon_s
+        columns, label_cols, fusion, model, record_ttl_s=settings.label_horizon_s
     )
     seconds = time.perf_counter() - started
     scores = ScoreTable(

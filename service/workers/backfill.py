@@ -45,6 +45,7 @@ from service.workers.backfill_inputs import (
     label_columns,
     load_model,
     load_settings,
+    plan_events,
     read_inputs,
     save_model,
 )
@@ -54,9 +55,6 @@ from service.workers.backfill_warm import WarmError, warm_redis
 
 FAULT_HOOK: Callable[[int], None] | None = None
 """Called with the chunk number after each chunk is scored (and kept): tests inject faults here."""
-
-_FIELDS = ("account_id", "device_id", "ip", "phone", "email")
-
 
 # --- the run -----------------------------------------------------------------------------------
 
@@ -153,8 +151,7 @@ class BackfillRun:
         self.progress.stage("planning")
         hasher = KeyHasher(self.settings.secret_bytes())
         planner = ColumnPlanner(self.config, hasher, self.settings.default_region)
-        fields = {f: getattr(events, f) for f in _FIELDS}
-        cols = planner.plan(events.event_id, events.ts_s, events.type, events.amount, fields)
+        cols = plan_events(planner, events)
         if cp is not None:
             cp.save_arrays("plan.npz", ckpt.plan_arrays(cols))
         return cols

@@ -21,6 +21,7 @@ import numpy as np
 from pydantic import ValidationError
 
 from scoring.batch import LabelColumns
+from scoring.batch_plan import ColumnPlanner, PlannedColumns
 from scoring.fusion import Fusion, ModelSnapshot, SnapshotError
 from service.cli import CommandError
 from service.config import Settings, SettingsError
@@ -168,6 +169,15 @@ def read_inputs(o: BackfillOptions) -> Inputs:
         inputs.labels = labels.table
         inputs.labels_read, inputs.labels_rejected = labels.rows_read, labels.rows_rejected
     return inputs
+
+
+IDENTIFIER_FIELDS = ("account_id", "device_id", "ip", "phone", "email")
+
+
+def plan_events(planner: ColumnPlanner, events: EventTable) -> PlannedColumns:
+    """The batch path's planned columns of a table of events (normalised, hashed, in order)."""
+    fields = {f: getattr(events, f) for f in IDENTIFIER_FIELDS}
+    return planner.plan(events.event_id, events.ts_s, events.type, events.amount, fields)
 
 
 def label_columns(events: EventTable, labels: LabelTable | None) -> tuple[LabelColumns | None, int]:

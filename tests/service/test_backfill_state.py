@@ -33,6 +33,7 @@ from scoring.fusion import Fusion, OnlineModel, model_features
 from scoring.hashing import KeyHasher
 from scoring.profile import Profile
 from service.config import Settings
+from service.workers.backfill_inputs import label_columns, plan_events
 
 REL = 1e-12
 WHOLE = {"f", "l"}  # first and last seen: whole seconds
@@ -40,13 +41,10 @@ WHOLE = {"f", "l"}  # first and last seen: whole seconds
 
 def planned(s: Settings) -> tuple[PlannedColumns, LabelColumns]:
     sc = scenario()
-    ev = sc.events
     planner = ColumnPlanner(s.scoring_config(), KeyHasher(s.secret_bytes()), s.default_region)
-    fields = {f: getattr(ev, f) for f in ("account_id", "device_id", "ip", "phone", "email")}
-    cols = planner.plan(ev.event_id, ev.ts_s, ev.type, ev.amount, fields)
-    row = {e: i for i, e in enumerate(ev.event_id)}
-    rows = np.array([row.get(e, -1) for e in sc.labels.event_id], dtype=np.int64)
-    return cols, LabelColumns(rows, sc.labels.labeled_at_s, sc.labels.is_fraud)
+    labels, _ = label_columns(sc.events, sc.labels)
+    assert labels is not None
+    return plan_events(planner, sc.events), labels
 
 
 def new_model(fusion: Fusion) -> OnlineModel:
@@ -111,12 +109,8 @@ def test_labels_with_a_kind_no_event_carries() -> None:
     events.phone = [None] * len(events)
     events.email = [None] * len(events)
     s = settings()
-    planner = ColumnPlanner(s.scoring_config(), KeyHasher(s.secret_bytes()))
-    fields = {f: getattr(events, f) for f in ("account_id", "device_id", "ip", "phone", "email")}
-    cols = planner.plan(events.event_id, events.ts_s, events.type, events.amount, fields)
-    row = {e: i for i, e in enumerate(events.event_id)}
-    rows = np.array([row.get(e, -1) for e in sc.labels.event_id], dtype=np.int64)
-    labels = LabelColumns(rows, sc.labels.labeled_at_s, sc.labels.is_fraud)
+    cols = plan_events(ColumnPlanner(s.scoring_config(), KeyHasher(s.secret_bytes())), events)
+    labels, _ = label_columns(events, sc.labels)
     fusion = Fusion(s.scoring_config())
     prepared = prepare_replay(cols, labels, fusion.config, record_ttl_s=s.label_horizon_s)
     assert prepared.applications

@@ -14,7 +14,7 @@ from dataclasses import dataclass
 import numpy as np
 import pytest
 
-from scoring.batch import LabelColumns, replay_columns
+from scoring.batch import replay_columns
 from scoring.batch_plan import ColumnPlanner
 from scoring.config import DAY_S, ScoringConfig
 from scoring.fusion import Fusion, OnlineModel, model_features
@@ -24,6 +24,7 @@ from service.replay import replay
 from service.scenario import ScenarioParams, generate
 from service.stores.memory import MemoryStore
 from service.tables import EventTable, LabelTable
+from service.workers.backfill_inputs import label_columns, plan_events
 from service.workers.learner import Learner
 
 SECRET = b"parity-test-secret"
@@ -70,26 +71,11 @@ def _per_event(events: EventTable, labels: LabelTable, config: ScoringConfig) ->
 
 
 def _batch(events: EventTable, labels: LabelTable, config: ScoringConfig) -> Replayed:
-    columns = ColumnPlanner(config, KeyHasher(SECRET)).plan(
-        events.event_id,
-        events.ts_s,
-        events.type,
-        events.amount,
-        {
-            "account_id": events.account_id,
-            "device_id": events.device_id,
-            "ip": events.ip,
-            "phone": events.phone,
-            "email": events.email,
-        },
-    )
-    row = {e: i for i, e in enumerate(events.event_id)}
-    label_columns = LabelColumns(
-        np.array([row.get(e, -1) for e in labels.event_id]), labels.labeled_at_s, labels.is_fraud
-    )
+    columns = plan_events(ColumnPlanner(config, KeyHasher(SECRET)), events)
+    label_cols, _ = label_columns(events, labels)
     fusion = Fusion(config)
     model = OnlineModel(model_features(fusion.layout), config.learning_rate, config.l2)
-    result = replay_columns(columns, label_columns, fusion, model, record_ttl_s=RECORD_TTL_S)
+    result = replay_columns(columns, label_cols, fusion, model, record_ttl_s=RECORD_TTL_S)
     blend = fusion._blend
     return Replayed(
         result.risk, result.decision, result.reasons, np.zeros(0), result.outcomes, blend
