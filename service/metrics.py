@@ -153,6 +153,11 @@ class Metrics:
             child = self._latency_of[key] = self.latency.labels(route, method, str(status))
         child.observe(elapsed_s)
 
+    def finish_request(self, route: str, method: str, status: int, elapsed_s: float) -> None:
+        """Time one request and write its access-log line (by route template, never raw path)."""
+        self.observe_request(route, method, status, elapsed_s)
+        access_log.info("%s %s %d %.1f ms", method, route, status, elapsed_s * 1000)
+
     def exposition(self) -> bytes:
         """The Prometheus text format of every metric (of every worker in multi-process mode)."""
         if self.multiprocess_dir is None:
@@ -194,8 +199,6 @@ class RequestMetrics:
         try:
             await self.app(scope, receive, send_and_note)
         finally:
-            elapsed = time.perf_counter() - start
             route = getattr(scope.get("route"), "path", UNMATCHED_ROUTE)
             method = scope.get("method", "")
-            self.metrics.observe_request(route, method, status, elapsed)
-            access_log.info("%s %s %d %.1f ms", method, route, status, elapsed * 1000)
+            self.metrics.finish_request(route, method, status, time.perf_counter() - start)

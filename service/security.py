@@ -88,7 +88,7 @@ class BodySizeLimit:
         if scope["type"] != "http":
             await self.app(scope, receive, send)
             return
-        declared = _declared_length(scope)
+        declared = declared_length(scope)
         if declared is not None and declared > self.max_body_bytes:
             await self._refuse(send)
             return
@@ -103,27 +103,30 @@ class BodySizeLimit:
         await self.app(scope, replay(body, receive), send)
 
     async def _refuse(self, send: Send) -> None:
-        body = json.dumps(
-            {
-                "detail": f"request body larger than {self.max_body_bytes} bytes: "
-                "send fewer items per request"
-            }
-        ).encode()
-        await send(
-            {
-                "type": "http.response.start",
-                "status": 413,
-                "headers": [
-                    (b"content-type", b"application/json"),
-                    (b"content-length", str(len(body)).encode()),
-                    (b"connection", b"close"),
-                ],
-            }
-        )
-        await send({"type": "http.response.body", "body": body})
+        await refuse_too_large(send, self.max_body_bytes)
 
 
-def _declared_length(scope: Scope) -> int | None:
+async def refuse_too_large(send: Send, max_body_bytes: int) -> None:
+    """Send the 413 answer for a body larger than ``max_body_bytes`` (and close the connection)."""
+    body = json.dumps(
+        {"detail": f"request body larger than {max_body_bytes} bytes: send fewer items per request"}
+    ).encode()
+    await send(
+        {
+            "type": "http.response.start",
+            "status": 413,
+            "headers": [
+                (b"content-type", b"application/json"),
+                (b"content-length", str(len(body)).encode()),
+                (b"connection", b"close"),
+            ],
+        }
+    )
+    await send({"type": "http.response.body", "body": body})
+
+
+def declared_length(scope: Scope) -> int | None:
+    """The request's ``Content-Length``, or None when it has none (or not a number)."""
     for name, value in scope.get("headers", ()):
         if name == b"content-length":
             try:

@@ -105,6 +105,22 @@ def install(app: FastAPI) -> None:
     app.add_exception_handler(FieldError, _field_problem)
 
 
+def log_unexpected(scope: Scope, exc: BaseException) -> None:
+    """Log an unexpected error with its type, route template and traceback frames, not its
+    message (which could quote a value)."""
+    route = getattr(scope.get("route"), "path", "unmatched")
+    frames = "".join(traceback.format_tb(exc.__traceback__))
+    log.error("unexpected %s on %s\n%s", type(exc).__name__, route, frames)
+
+
+async def send_internal_error(send: Send) -> int:
+    """Send the bare 500 answer; its status."""
+    response = JSONResponse({"detail": "internal error"}, status_code=500)
+    await send({"type": "http.response.start", "status": 500, "headers": response.raw_headers})
+    await send({"type": "http.response.body", "body": response.body})
+    return 500
+
+
 class ContainErrors:
     """ASGI middleware: an unexpected error becomes a bare 500, logged without its message."""
 
@@ -125,9 +141,6 @@ class ContainErrors:
         try:
             await self.app(scope, receive, send_and_note)
         except Exception as exc:
-            route = getattr(scope.get("route"), "path", "unmatched")
-            frames = "".join(traceback.format_tb(exc.__traceback__))
-            log.error("unexpected %s on %s\n%s", type(exc).__name__, route, frames)
+            log_unexpected(scope, exc)
             if not started:
-                response = JSONResponse({"detail": "internal error"}, status_code=500)
-                await response(scope, receive, send)
+                await send_internal_error(send)

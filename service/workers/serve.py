@@ -90,6 +90,8 @@ def server_options(host: str, port: int, workers: int) -> dict[str, Any]:
         "access_log": False,
         "log_config": log_config(),
         "server_header": False,
+        # Client addresses are neither used nor logged: no proxy headers to interpret.
+        "proxy_headers": False,
         "timeout_graceful_shutdown": GRACEFUL_SHUTDOWN_S,
     }
 

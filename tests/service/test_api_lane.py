@@ -7,20 +7,26 @@
 - Validation: for any JSON object, ``EventIn.model_validate_json`` (the lane) accepts exactly
   what FastAPI accepts (it parses with ``json.loads``, then validates the Python value), with
   the same values (FastAPI's documented request-body handling: JSON body into the model).
-- The request metrics name the route template for answers the lane gives.
+- The request metrics and the access log name the route template for answers the lane gives.
+- What the service's middlewares do for FastAPI's routes holds for the lane's answers too: an
+  unexpected error is a bare 500 logged without its message (and counted as a 500), and an
+  oversize body is refused with 413 whether declared or streamed (the lane leaves both a body
+  without a declared length and an oversize one to the middlewares).
 """
 
 from __future__ import annotations
 
 import asyncio
 import json
+import logging
 from typing import Any
 
 import pytest
-from hypothesis import given, settings
+from hypothesis import given
+from hypothesis import settings as examples
 from hypothesis import strategies as st
 from pydantic import ValidationError
-from test_api_support import event, inject, running, wait_for
+from test_api_support import event, inject, running, settings, wait_for
 
 from service.api_models import EventIn
 from service.routes.lane import plain_json
@@ -88,6 +94,66 @@ async def test_metrics_name_the_route_of_lane_answers() -> None:
     assert 'route="unmatched",method="POST"' not in text
 
 
+async def test_access_log_names_the_route_of_lane_answers(
+    caplog: pytest.LogCaptureFixture,
+) -> None:
+    with caplog.at_level(logging.INFO, logger="emberscore.access"):
+        async with running() as (client, _):
+            await client.post("/v1/score", json=event(1))
+    lines = [r.getMessage() for r in caplog.records if r.name == "emberscore.access"]
+    assert len(lines) == 1
+    assert lines[0].startswith("POST /v1/score 200 ")
+
+
+SECRET = "shopper-in-the-message@quillpost.example"
+
+
+async def boom() -> None:
+    raise RuntimeError(SECRET)
+
+
+async def _unexpected(headers: dict[str, str]) -> tuple[Any, str]:
+    async with running() as (client, app):
+        inject(app, {"begin": boom})
+        reply = await client.post("/v1/score", content=json.dumps(event(3)), headers=headers)
+        text = (await client.get("/metrics")).text
+    return reply, text
+
+
+async def test_unexpected_error_is_a_bare_500_on_either_path(
+    caplog: pytest.LogCaptureFixture,
+) -> None:
+    with caplog.at_level(logging.ERROR, logger="emberscore.service"):
+        (lane, lane_metrics), (documented, _) = await _unexpected(LANE), await _unexpected(FASTAPI)
+    assert lane.status_code == 500
+    assert lane.json() == {"detail": "internal error"}
+    _same(lane, documented)
+    logged = [r.getMessage() for r in caplog.records if r.name == "emberscore.service"]
+    assert len(logged) == 2
+    assert all("unexpected RuntimeError on /v1/score" in m for m in logged)
+    assert not any(SECRET in m for m in logged)
+    assert 'route="/v1/score",status="500"' in lane_metrics.replace('method="POST",', "")
+
+
+async def test_oversize_score_body_is_413_declared_or_streamed() -> None:
+    raw = json.dumps(event(1) | {"device_id": "d" * 20_000}).encode()
+
+    async def streamed() -> Any:
+        for i in range(0, len(raw), 1000):
+            yield raw[i : i + 1000]
+
+    async with running(settings(max_body_bytes=10_000)) as (client, _):
+        replies = [
+            await client.post("/v1/score", content=raw, headers=LANE),
+            await client.post("/v1/score", content=streamed(), headers=LANE),
+        ]
+        small = await client.post("/v1/score", content=json.dumps(event(2)), headers=LANE)
+    for reply in replies:
+        assert reply.status_code == 413
+        assert reply.json()["detail"].startswith("request body larger than 10000 bytes")
+    assert small.status_code == 200
+
+
 def test_plain_json_only() -> None:
     assert plain_json(b"Application/JSON ; charset=utf-8")
     assert not plain_json(b"application/vnd.emberscore+json")
@@ -105,7 +171,7 @@ values = st.one_of(
 FIELDS = [*EventIn.model_fields, "extra_field"]
 
 
-@settings(max_examples=400)
+@examples(max_examples=400)
 @given(
     changes=st.dictionaries(st.sampled_from(FIELDS), values, max_size=4),
     dropped=st.sets(st.sampled_from(FIELDS), max_size=2),
