@@ -153,27 +153,54 @@ class Profile:
     def from_members(cls, members: Mapping[str, float], config: ScoringConfig) -> Profile:
         """Rebuild a profile from `to_members` output (unknown members are ignored)."""
         p = cls(config)
+        sums = {f"{j}.": s for j, s in enumerate(p.counts)}
+        sums.update({"b.": p.bad, "g.": p.good, "s.": p.amount})
         for name, value in members.items():
-            p._load_member(name, float(value))
+            # Every record holds the same few hundred names: each is parsed once per process.
+            parsed = _PARSED.get(name) or _parse_member(name)
+            group, key = parsed
+            number = float(value)
+            target = sums.get(group)
+            if target is not None:
+                target[key] = number
+            elif group == "f":
+                p.first_s = int(number)
+            elif group == "l":
+                p.last_s = int(number)
+            elif group in _TARGET_LETTERS:
+                p.fanout.setdefault(group, {})[key] = int(number)
         return p
 
-    def _load_member(self, name: str, value: float) -> None:
-        head, _, epoch = name.partition(".")
-        if epoch:
-            sums = {"b": self.bad, "g": self.good, "s": self.amount}.get(head)
-            if sums is None and head.isdigit():
-                j = int(head)
-                sums = self.counts[j] if j < len(self.counts) else None
-            if sums is not None:
-                sums[int(epoch)] = value
-        elif name == "f":
-            self.first_s = int(value)
-        elif name == "l":
-            self.last_s = int(value)
-        elif name[:1] in _TARGET_LETTERS and name[1:].isdigit():
-            self.fanout.setdefault(name[0], {})[int(name[1:])] = int(value)
+
+def _parse_member(name: str) -> tuple[str, int]:
+    """A member name as (group, key): ``("1.", epoch)`` for a counter's sum, ``("b.", epoch)``
+    for a label or amount sum, ``("f", 0)``, ``("l", 0)``, ``(letter, bucket)`` for a fan-out
+    bucket, and ``("", 0)`` for a name `Profile` does not know; remembered in `_PARSED`.
+
+    >>> _parse_member("1.3"), _parse_member("a17"), _parse_member("x.3")
+    (('1.', 3), ('a', 17), ('', 0))
+    """
+    head, _, epoch = name.partition(".")
+    parsed = ("", 0)
+    if epoch:
+        if head in ("b", "g", "s"):
+            parsed = (f"{head}.", int(epoch))
+        elif head.isdigit():
+            parsed = (f"{int(head)}.", int(epoch))
+    elif name in ("f", "l"):
+        parsed = (name, 0)
+    elif name[:1] in _TARGET_LETTERS and name[1:].isdigit():
+        parsed = (name[0], int(name[1:]))
+    if len(_PARSED) >= PARSED_MEMO:
+        _PARSED.clear()
+    _PARSED[name] = parsed
+    return parsed
 
 
+PARSED_MEMO = 4096
+"""Member names `_parse_member` remembers: a few hundred are in use at any time (two epochs of
+each sum, the fan-out buckets), so the memo is only cleared if something unexpected fills it."""
+_PARSED: dict[str, tuple[str, int]] = {}
 _TARGET_LETTERS = frozenset(KIND_LETTERS.values())
 
 __all__ = ["EPOCH_HALF_LIVES", "Profile", "TimeBasis"]
