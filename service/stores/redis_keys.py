@@ -181,21 +181,25 @@ class WritePlanner:
         }
         self._bucket_names: dict[tuple[str, int], str] = {}  # fan-out member names, made once
         self._stale_of: dict[tuple[str, ...], tuple[str, ...]] = {}
+        self._sum_names_of: dict[tuple[int, ...], tuple[tuple[str, ...], str]] = {}
 
     def event(self, plan: EventPlan) -> list[ProfileWrites]:
         """Writes of one event, one per identifier of the plan.
 
         The sums, first seen and last seen are the same for every identifier of an event: they
-        come from one fresh `Profile` and are shared (the same objects) by every identifier's
-        writes. Each identifier adds its fan-out buckets (a maximum at the event's second, as
-        `Profile.record` keeps them) and, for the amount kind, its spend (from a second
-        `Profile`).
+        are what one fresh `Profile` holds after the event, and are shared (the same objects)
+        by every identifier's writes. Each identifier adds its fan-out buckets (a maximum at the
+        event's second, as `Profile.record` keeps them) and, for the amount kind, its spend.
         """
-        base = Profile(self.config)
-        base.record(plan.basis, (), None)
-        increments, lowest, seen = _split(base.to_members())
+        basis = plan.basis
+        counts, spend = self._sum_names(basis)
+        # A fresh profile's sums after one event are 0.0 + 1.0 * factor, the factors themselves
+        # (and its spend amount * factor), so only the names need a `Profile`.
+        increments = dict(zip(counts, basis.factors, strict=True))
+        t = int(basis.t_s)
+        lowest = {"f": float(t)}
+        seen = {"l": float(t)}
         stale = self._stale(increments)
-        t = int(plan.basis.t_s)
         names = self._bucket_names
         out = []
         for hits, amount in zip(plan.hits, plan.amounts, strict=True):
@@ -210,11 +214,22 @@ class WritePlanner:
             if amount is None:
                 out.append(ProfileWrites(increments, lowest, highest, stale))
                 continue
-            spend = Profile(self.config)
-            spend.record(plan.basis, (), amount)
-            own, _, _ = _split(spend.to_members())
+            own = {**increments, spend: amount * basis.factors[-1]}
             out.append(ProfileWrites(own, lowest, highest, self._stale(own)))
         return out
+
+    def _sum_names(self, basis: TimeBasis) -> tuple[tuple[str, ...], str]:
+        """Names of the sums an event adds to at ``basis``'s epochs: the counters' in order,
+        and the spend's; taken from a fresh `Profile` (epochs change every few weeks)."""
+        known = self._sum_names_of.get(basis.epochs)
+        if known is None:
+            p = Profile(self.config)
+            p.record(basis, (), 1.0)
+            *counts, spend = _split(p.to_members())[0]
+            if len(self._sum_names_of) >= STALE_MEMO:
+                self._sum_names_of.clear()
+            known = self._sum_names_of[basis.epochs] = (tuple(counts), spend)
+        return known
 
     def label(self, basis: TimeBasis, is_fraud: bool, weight: float) -> ProfileWrites:
         """Writes of one label (``weight=-1`` removes an earlier one) on each identifier."""

@@ -13,6 +13,7 @@ commands there, because redis-py's cluster pipeline does not run scripts.
 
 from __future__ import annotations
 
+import functools
 import hashlib
 from collections.abc import Callable
 from typing import Any
@@ -84,35 +85,41 @@ class ScriptCalls:
 
     def __init__(self, ttl_s: int, read: bool) -> None:
         self._head = ["1" if read else "0", str(ttl_s)]
-        self._packed_head = b"*10\r\n" + b"".join(_bulk(x) for x in (b"EVALSHA", _SHA, b"1"))
-        self._packed_argv = b"".join(_bulk(x.encode()) for x in self._head)
-        self._text: dict[int, tuple[Any, str, bytes]] = {}
+        self._packed_head, self._packed_argv = _packed_fixed(ttl_s, read)
+        self._packed: dict[int, tuple[object, bytes]] = {}
 
     def args(self, write: ProfileWrites) -> list[str]:
         """ARGV for one identifier's writes, as text."""
-        return [*self._head, *(self._once(part, out)[1] for part, out in self._parts(write))]
+        return [*self._head, *(write_out(part) for part, write_out in _parts(write))]
 
     def packed(self, key: str, write: ProfileWrites) -> bytes:
         """The whole EVALSHA command for one identifier's key and writes, packed."""
-        parts = [self._once(part, out)[2] for part, out in self._parts(write)]
-        return b"".join((self._packed_head, _bulk(key.encode()), self._packed_argv, *parts))
+        out = [self._packed_head, _bulk(key.encode()), self._packed_argv]
+        known = self._packed
+        for part, write_out in _parts(write):
+            # Kept with the part itself, so that no other object can take its id meanwhile.
+            held = known.get(id(part))
+            if held is None:
+                held = known[id(part)] = (part, _bulk(write_out(part).encode()))
+            out.append(held[1])
+        return b"".join(out)
 
-    @staticmethod
-    def _parts(write: ProfileWrites) -> tuple[tuple[Any, Callable[[Any], str]], ...]:
-        return (
-            (write.increments, _increments),
-            (write.lowest, _scores),
-            (write.highest, _scores),
-            (write.stale, " ".join),
-        )
 
-    def _once(self, part: Any, write_out: Callable[[Any], str]) -> tuple[Any, str, bytes]:
-        # Kept with the part itself, so that no other object can take its id meanwhile.
-        known = self._text.get(id(part))
-        if known is None:
-            text = write_out(part)
-            known = self._text[id(part)] = (part, text, _bulk(text.encode()))
-        return known
+def _parts(write: ProfileWrites) -> tuple[tuple[Any, Callable[[Any], str]], ...]:
+    return (
+        (write.increments, _increments),
+        (write.lowest, _scores),
+        (write.highest, _scores),
+        (write.stale, " ".join),
+    )
+
+
+@functools.lru_cache(maxsize=8)
+def _packed_fixed(ttl_s: int, read: bool) -> tuple[bytes, bytes]:
+    """The packed parts of a call that are the same for every identifier: the command, script
+    and key count before the key, and the first two ARGV after it (every event, every call)."""
+    head = b"*10\r\n" + b"".join(_bulk(x) for x in (b"EVALSHA", _SHA, b"1"))
+    return head, b"".join(_bulk(x.encode()) for x in ("1" if read else "0", str(ttl_s)))
 
 
 _SHA = PROFILE_UPDATE_SHA.encode()
