@@ -244,12 +244,11 @@ class ServiceApp(FastAPI):
 
     async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
         lane = self.lane
-        endpoint = None if lane is None else lane.endpoint_for(scope)
-        if endpoint is None:
+        path = None if lane is None else lane.route_for(scope)
+        if lane is None or path is None:
             await super().__call__(scope, receive, send)
             return
-        assert lane is not None
-        await lane.answer(self, endpoint, scope, receive, send, super().__call__)
+        await lane.answer(self, path, scope, receive, send, super().__call__)
 
 
 def create_app(settings: Settings | None = None, *, freeze: bool = False) -> ServiceApp:

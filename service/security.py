@@ -21,8 +21,6 @@ from fastapi.security import APIKeyHeader
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 API_KEY_HEADER = "X-API-Key"
-BODY_SCOPE_KEY = "emberscore.body"
-"""Where `BodySizeLimit` leaves the body it read, in the request's scope, for the fast lane."""
 
 api_key_header = APIKeyHeader(
     name=API_KEY_HEADER,
@@ -77,7 +75,7 @@ class BodySizeLimit:
     The body is read here, up to the limit, before the application sees any of it, so an
     oversize request is refused whether or not it declares its length and whatever route it
     targets, and the application never holds more than the limit. The body read is replayed to
-    the application and also left in the scope (`BODY_SCOPE_KEY`).
+    the application.
     """
 
     def __init__(self, app: ASGIApp, max_body_bytes: int) -> None:
@@ -99,7 +97,6 @@ class BodySizeLimit:
             return
         if body is None:  # the client went away
             return
-        scope[BODY_SCOPE_KEY] = body
         await self.app(scope, replay(body, receive), send)
 
     async def _refuse(self, send: Send) -> None:

@@ -46,7 +46,6 @@ from service.metrics import Metrics
 from service.routes.errors import log_unexpected, send_internal_error
 from service.security import (
     API_KEY_HEADER,
-    BODY_SCOPE_KEY,
     BodyTooLarge,
     declared_length,
     read_body,
@@ -122,16 +121,17 @@ class EventLane:
         self.metrics = metrics
         self.max_body_bytes = max_body_bytes
 
-    def endpoint_for(self, scope: Scope) -> Endpoint | None:
-        """The endpoint of an event route the request is for, else None (FastAPI answers)."""
+    def route_for(self, scope: Scope) -> str | None:
+        """The event route (path) the request is for, else None (FastAPI answers)."""
         if scope["type"] != "http" or scope["method"] != "POST":
             return None
-        return self.endpoints.get(_route_path(scope))
+        path = _route_path(scope)
+        return path if path in self.endpoints else None
 
     async def answer(
         self,
         app: Any,
-        endpoint: Endpoint,
+        path: str,
         scope: Scope,
         receive: Receive,
         send: Send,
@@ -150,17 +150,15 @@ class EventLane:
             return
         if body is None:  # the client went away
             return
-        scope[BODY_SCOPE_KEY] = body
         event = common_case(app, scope, body)
         if event is None:
             await rest(scope, replay(body, receive), send)
             return
-        path = _route_path(scope)
         scope["app"] = app
         scope["route"] = self.templates[path]
         status = 500
         try:
-            status = await self._send(app, scope, endpoint, event, send)
+            status = await self._send(app, scope, self.endpoints[path], event, send)
         finally:
             self.metrics.finish_request(path, "POST", status, time.perf_counter() - started)
 

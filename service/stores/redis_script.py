@@ -84,7 +84,7 @@ class ScriptCalls:
     """
 
     def __init__(self, ttl_s: int, read: bool) -> None:
-        self._head = ["1" if read else "0", str(ttl_s)]
+        self._head = _fixed_argv(ttl_s, read)
         self._packed_head, self._packed_argv = _packed_fixed(ttl_s, read)
         self._packed: dict[int, tuple[object, bytes]] = {}
 
@@ -119,7 +119,12 @@ def _packed_fixed(ttl_s: int, read: bool) -> tuple[bytes, bytes]:
     """The packed parts of a call that are the same for every identifier: the command, script
     and key count before the key, and the first two ARGV after it (every event, every call)."""
     head = b"*10\r\n" + b"".join(_bulk(x) for x in (b"EVALSHA", _SHA, b"1"))
-    return head, b"".join(_bulk(x.encode()) for x in ("1" if read else "0", str(ttl_s)))
+    return head, b"".join(_bulk(x.encode()) for x in _fixed_argv(ttl_s, read))
+
+
+def _fixed_argv(ttl_s: int, read: bool) -> list[str]:
+    """The first two ARGV of every call: whether to read the set back, and the key's TTL."""
+    return ["1" if read else "0", str(ttl_s)]
 
 
 _SHA = PROFILE_UPDATE_SHA.encode()
