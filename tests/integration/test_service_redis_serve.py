@@ -138,12 +138,17 @@ def test_keep_alive_connections_spread_over_both_workers(redis_url: str, tmp_pat
 
 
 def _post_until_answered(url: str, body: dict[str, object]) -> httpx.Response:
-    """POST /v1/score on a new connection, again while nothing listens (for up to 30 s)."""
+    """POST /v1/score on a new connection, again while nothing listens (for up to 30 s).
+
+    A connection the kernel queued on the killed worker's socket just before it died is closed
+    without an answer (``RemoteProtocolError``); nothing read it, and the event id makes a retry
+    safe, so it is retried as a refused connection is.
+    """
     deadline = time.monotonic() + 30
     while True:
         try:
             return httpx.post(url + "/v1/score", json=body, headers={"connection": "close"})
-        except httpx.ConnectError:
+        except (httpx.ConnectError, httpx.RemoteProtocolError):
             if time.monotonic() > deadline:
                 raise
             time.sleep(0.1)
