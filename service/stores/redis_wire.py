@@ -10,6 +10,13 @@ connection's commands in the order it received them). No exchange holds the conn
 that gives up (its budget ran out) leaves it in step: its replies are read and dropped when they
 come.
 
+The reader takes whatever bytes have arrived and hands over every complete reply in them
+(`_HiredisReplies`), where redis-py reads one reply per call, each through several awaits: an
+event's round trip has six to eight replies. It reads this way when redis-py reads the
+connection with hiredis (the default when hiredis is installed, as this project requires), with a
+hiredis reader set up as redis-py sets up its own, so the replies are the values redis-py would
+give; with any other parser it reads through redis-py, one reply at a time.
+
 The connection itself is made by redis-py from the store's client (host or unix socket, TLS,
 user, password, database, protocol), so every form of ``EMBERSCORE_REDIS_URL`` works. Errors
 follow redis-py: an error reply is a `ResponseError` value in the replies; a lost connection
@@ -25,10 +32,13 @@ from collections.abc import Iterable, Sequence
 from typing import Any, cast
 
 from redis.exceptions import ConnectionError as RedisConnectionError
-from redis.exceptions import ResponseError
+from redis.exceptions import InvalidResponse, ResponseError
 
 Arg = bytes | str | int | float
 Command = Sequence[Arg]
+
+READ_SIZE = 65_536
+"""Bytes the reader asks the connection for at a time."""
 
 MAX_WAITING = 50_000
 """Exchanges that may wait for replies at once; past that the server is taken as hung: the
@@ -119,13 +129,17 @@ class Wire:
         """Drop the connection; exchanges still waiting fail."""
         await self._drop(RedisConnectionError("the store is closing"))
 
+    def _alive(self) -> bool:
+        """Whether the connection is up and its reader still takes replies."""
+        return self._connection is not None and self._reader is not None and not self._reader.done()
+
     async def _open(self) -> Any:
-        if self._reader is not None and not self._reader.done():
+        if self._alive():
             return self._connection
         if self._opening is None:
             self._opening = asyncio.Lock()
         async with self._opening:
-            if self._reader is None or self._reader.done():
+            if not self._alive():
                 connection = self._connection_class(**self._connection_kwargs)
                 await connection.connect()
                 self._connection = connection
@@ -134,13 +148,22 @@ class Wire:
 
     async def _read(self, connection: Any) -> None:
         try:
+            replies = _HiredisReplies.of(connection)
+            if replies is None:
+                while True:
+                    try:
+                        reply = await connection.read_response()
+                    except ResponseError as exc:
+                        reply = exc
+                    self._hand_over(reply)
             while True:
-                try:
-                    reply = await connection.read_response()
-                except ResponseError as exc:
-                    reply = exc
-                self._hand_over(reply)
+                for reply in await replies.next_batch():
+                    self._hand_over(reply)
         except BaseException as exc:  # lost, out of step, or closing: nobody gets a reply now
+            # Given up before the first await below: an exchange that came meanwhile would wait
+            # on this connection for replies that cannot come (and take the next one's).
+            if self._connection is connection:
+                self._connection = None
             self._fail_all(exc)
             with contextlib.suppress(Exception):
                 await connection.disconnect()
@@ -177,3 +200,66 @@ class Wire:
             with contextlib.suppress(Exception):
                 await self._connection.disconnect()
             self._connection = None
+
+
+class _HiredisReplies:
+    """Every complete reply in the bytes at hand, parsed by a hiredis reader of the wire's own.
+
+    The reader is set up as redis-py sets up its own for the connection (the same error-reply
+    classes, the same decoding), so a reply is the value redis-py's ``read_response`` returns,
+    and an error reply is a `ResponseError` value, as `Wire` gives it. What redis-py raises
+    instead of returning is raised here too: a `ConnectionError` reply (``LOADING`` is one) and
+    a closed connection.
+    """
+
+    def __init__(
+        self, stream: asyncio.StreamReader, reader: Any, more: object, push: type | None
+    ) -> None:
+        self._stream = stream
+        self._reader = reader
+        self._more = more  # what the reader gives while a reply is incomplete
+        self._push = push  # hiredis's class of push messages, where it has one
+
+    @classmethod
+    def of(cls, connection: Any) -> _HiredisReplies | None:
+        """Replies of a connection redis-py reads with hiredis; None for any other parser (or a
+        redis-py whose connection does not look as expected)."""
+        parser: Any = getattr(connection, "_parser", None)
+        stream = getattr(connection, "_reader", None)
+        if type(parser).__name__ != "_AsyncHiredisParser" or stream is None:
+            return None
+        import hiredis
+
+        more = object()
+        settings: dict[str, Any] = {
+            "protocolError": InvalidResponse,
+            "replyError": parser.parse_error,
+            "notEnoughData": more,
+        }
+        encoder = getattr(connection, "encoder", None)
+        if encoder is not None and encoder.decode_responses:
+            settings["encoding"] = encoder.encoding
+            settings["errors"] = encoder.encoding_errors
+        try:
+            reader = hiredis.Reader(**settings)
+        except TypeError:  # a hiredis without ``notEnoughData``: read through redis-py
+            return None
+        return cls(stream, reader, more, getattr(hiredis, "PushNotification", None))
+
+    async def next_batch(self) -> list[Any]:
+        """Wait for bytes; the replies they complete (possibly none)."""
+        data = await self._stream.read(READ_SIZE)
+        if not data:
+            raise RedisConnectionError("Connection closed by server.")
+        self._reader.feed(data)
+        out = []
+        reply = self._reader.gets()
+        while reply is not self._more:
+            if isinstance(reply, RedisConnectionError):
+                raise reply
+            if isinstance(reply, list) and reply and isinstance(reply[0], RedisConnectionError):
+                raise reply[0]
+            if self._push is None or not isinstance(reply, self._push):  # pushes: nobody asked
+                out.append(reply)
+            reply = self._reader.gets()
+        return out

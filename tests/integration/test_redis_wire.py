@@ -5,6 +5,9 @@
 - Concurrent exchanges each get their own replies, in order; an error reply is a value and the
   connection goes on; an exchange whose caller gave up leaves the connection in step.
 - A lost connection fails what waits on it, and the next exchange connects again.
+- The wire reads replies itself (a hiredis reader of its own) when redis-py reads the
+  connection with hiredis, and through redis-py otherwise: each behaviour above is checked with
+  both, and the values are redis-py's (error classes, decoding, replies longer than one read).
 """
 
 from __future__ import annotations
@@ -15,12 +18,13 @@ from typing import Any
 import pytest
 from hypothesis import given
 from hypothesis import strategies as st
+from redis._parsers import _AsyncRESP2Parser
 from redis.asyncio import Redis
 from redis.asyncio.connection import Connection
 from redis.exceptions import ConnectionError as RedisConnectionError
-from redis.exceptions import ResponseError
+from redis.exceptions import NoScriptError, ResponseError
 
-from service.stores.redis_wire import Wire, pack
+from service.stores.redis_wire import READ_SIZE, Wire, _HiredisReplies, pack
 
 args = st.one_of(
     st.binary(max_size=40),
@@ -48,9 +52,18 @@ def test_pack_refuses_what_it_cannot_send() -> None:
         pack([("SET", "k", True)])  # type: ignore[list-item]
 
 
-def _run(url: str, body: Any) -> Any:
+PARSERS = {"hiredis": {}, "python": {"parser_class": _AsyncRESP2Parser}}
+"""How redis-py reads the connection: hiredis (its default when installed) or in Python."""
+
+
+@pytest.fixture(params=sorted(PARSERS))
+def parser(request: pytest.FixtureRequest) -> str:
+    return str(request.param)
+
+
+def _run(url: str, body: Any, parser: str = "hiredis", **options: Any) -> Any:
     async def main() -> Any:
-        client = Redis.from_url(url)
+        client = Redis.from_url(url, **PARSERS[parser], **options)
         wire = Wire(client)
         try:
             return await body(wire)
@@ -61,7 +74,7 @@ def _run(url: str, body: Any) -> Any:
     return asyncio.run(main())
 
 
-def test_concurrent_exchanges_get_their_own_replies(redis_url: str) -> None:
+def test_concurrent_exchanges_get_their_own_replies(redis_url: str, parser: str) -> None:
     async def body(wire: Wire) -> None:
         async def one(i: int) -> list[Any]:
             return await wire.exchange([("ECHO", f"a{i}"), ("ECHO", f"b{i}")])
@@ -69,10 +82,10 @@ def test_concurrent_exchanges_get_their_own_replies(redis_url: str) -> None:
         replies = await asyncio.gather(*(one(i) for i in range(300)))
         assert replies == [[f"a{i}".encode(), f"b{i}".encode()] for i in range(300)]
 
-    _run(redis_url, body)
+    _run(redis_url, body, parser)
 
 
-def test_an_error_reply_is_a_value_and_the_connection_goes_on(redis_url: str) -> None:
+def test_an_error_reply_is_a_value_and_the_connection_goes_on(redis_url: str, parser: str) -> None:
     async def body(wire: Wire) -> None:
         replies = await wire.exchange([("SET", "w{1}", "x"), ("INCR", "w{1}"), ("GET", "w{1}")])
         assert replies[0] in (b"OK", "OK", True)
@@ -80,10 +93,10 @@ def test_an_error_reply_is_a_value_and_the_connection_goes_on(redis_url: str) ->
         assert replies[2] == b"x"
         assert await wire.exchange([("ECHO", "after")]) == [b"after"]
 
-    _run(redis_url, body)
+    _run(redis_url, body, parser)
 
 
-def test_a_caller_that_gives_up_leaves_the_connection_in_step(redis_url: str) -> None:
+def test_a_caller_that_gives_up_leaves_the_connection_in_step(redis_url: str, parser: str) -> None:
     """The first exchange blocks in Redis (BLPOP with a 0.3 s timeout); its caller stops
     waiting at once; the next exchange still gets its own reply, not the late one."""
 
@@ -92,7 +105,7 @@ def test_a_caller_that_gives_up_leaves_the_connection_in_step(redis_url: str) ->
             await asyncio.wait_for(wire.exchange([("BLPOP", "w{empty}", "0.3")]), 0.01)
         assert await wire.exchange([("ECHO", "mine")]) == [b"mine"]
 
-    _run(redis_url, body)
+    _run(redis_url, body, parser)
 
 
 def test_too_many_unanswered_exchanges_drop_the_connection(redis_url: str) -> None:
@@ -112,7 +125,9 @@ def test_too_many_unanswered_exchanges_drop_the_connection(redis_url: str) -> No
     _run(redis_url, body)
 
 
-def test_a_lost_connection_fails_waiters_and_the_next_exchange_reconnects(own_redis: Any) -> None:
+def test_a_lost_connection_fails_waiters_and_the_next_exchange_reconnects(
+    own_redis: Any, parser: str
+) -> None:
     async def body(wire: Wire) -> None:
         assert await wire.exchange([("ECHO", "one")]) == [b"one"]
         waiting = asyncio.ensure_future(wire.exchange([("BLPOP", "w{empty}", "5")]))
@@ -125,4 +140,50 @@ def test_a_lost_connection_fails_waiters_and_the_next_exchange_reconnects(own_re
         own_redis.start()
         assert await wire.exchange([("ECHO", "back")]) == [b"back"]
 
-    _run(own_redis.url, body)
+    _run(own_redis.url, body, parser)
+
+
+def test_the_wire_reads_replies_itself_only_where_redis_py_uses_hiredis(
+    redis_url: str, parser: str
+) -> None:
+    async def body(wire: Wire) -> None:
+        assert await wire.exchange([("ECHO", "x")]) == [b"x"]
+        own = _HiredisReplies.of(wire._connection)
+        assert (own is not None) == (parser == "hiredis")
+
+    _run(redis_url, body, parser)
+
+
+def test_error_replies_are_redis_py_s_own_classes(redis_url: str, parser: str) -> None:
+    """NOSCRIPT must stay a `NoScriptError`: the store sends the script again on it."""
+
+    async def body(wire: Wire) -> None:
+        replies = await wire.exchange([("EVALSHA", "0" * 40, 0), ("ECHO", "next")])
+        assert isinstance(replies[0], NoScriptError)
+        assert replies[1] == b"next"
+
+    _run(redis_url, body, parser)
+
+
+def test_replies_longer_than_one_read_arrive_whole_and_in_order(
+    redis_url: str, parser: str
+) -> None:
+    big = bytes(range(256)) * (3 * READ_SIZE // 256 + 7)  # three reads and a bit
+
+    async def body(wire: Wire) -> None:
+        await wire.exchange([("SET", "w{big}", big)])
+        echoes = [("ECHO", f"e{i}") for i in range(3_000)]  # many replies split across reads
+        replies = await wire.exchange([("GET", "w{big}"), *echoes, ("GET", "w{big}")])
+        assert replies[0] == big
+        assert replies[-1] == big
+        assert replies[1:-1] == [f"e{i}".encode() for i in range(3_000)]
+
+    _run(redis_url, body, parser)
+
+
+def test_decoded_replies_are_what_redis_py_decodes(redis_url: str, parser: str) -> None:
+    async def body(wire: Wire) -> None:
+        replies = await wire.exchange([("ECHO", "héllo"), ("GET", "w{nothing}")])
+        assert replies == ["héllo", None]
+
+    _run(redis_url, body, parser, decode_responses=True)
