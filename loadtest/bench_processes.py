@@ -33,6 +33,42 @@ def load_average() -> str:
     return f"{os.getloadavg()[0]:.1f}"
 
 
+def machine_jiffies(stat: str | None = None) -> tuple[int, int] | None:
+    """(stolen, total) CPU time of the whole machine so far, in clock ticks, from the ``cpu``
+    line of ``/proc/stat`` (or of ``stat``); None where there is no such file.
+
+    The fields are user, nice, system, idle, iowait, irq, softirq, steal, guest, guest_nice
+    (proc(5)); guest time is already counted in user and nice, so the total is the first eight.
+    Steal is the time a virtual machine was ready to run but the hypervisor ran another guest.
+
+    >>> machine_jiffies("cpu  100 0 50 800 10 0 5 35 0 0")
+    (35, 1000)
+    """
+    if stat is None:
+        try:
+            stat = Path("/proc/stat").read_text()
+        except OSError:
+            return None
+    fields = stat.split("\n", 1)[0].split()
+    if len(fields) < 9 or fields[0] != "cpu":
+        return None
+    ticks = [int(x) for x in fields[1:9]]
+    return ticks[7], sum(ticks)
+
+
+def steal_share(before: tuple[int, int] | None, after: tuple[int, int] | None) -> float | None:
+    """Share of the machine's CPU time stolen by the hypervisor between two `machine_jiffies`.
+
+    >>> steal_share((35, 1000), (135, 2000))
+    0.1
+    >>> steal_share(None, (1, 2)) is None
+    True
+    """
+    if before is None or after is None or after[1] <= before[1]:
+        return None
+    return (after[0] - before[0]) / (after[1] - before[1])
+
+
 def free_port() -> int:
     with socket.socket() as s:
         s.bind(("127.0.0.1", 0))

@@ -40,6 +40,8 @@ from loadtest.bench_processes import (
     RedisProcess,
     ServiceProcess,
     load_average,
+    machine_jiffies,
+    steal_share,
 )
 from loadtest.load import (
     CPU_WARN_SHARE,
@@ -66,6 +68,7 @@ class Measured:
     process_cpu_s: tuple[float, ...]  # each service process, busiest first
     redis_cpu_s: float
     verdict: str = ""
+    steal: float | None = None  # share of the machine's CPU time other guests took meanwhile
 
     @property
     def service_cpu_s(self) -> float:
@@ -82,6 +85,12 @@ class Measured:
             f"Redis CPU {1e6 * self.redis_cpu_s / n:.0f} µs/request"
         )
 
+    def stolen(self) -> str:
+        return "n/a" if self.steal is None else f"{100 * self.steal:.0f}%"
+
+
+STEAL_WARN_SHARE = 0.05
+"""Steal above this share of the machine's CPU time gets a warning (a rule of thumb of ours)."""
 
 SUSTAINED = "sustained"
 CLIENT_BOUND = "the client used a whole core"
@@ -121,11 +130,13 @@ class Bench:
         config = LoadConfig(
             self.service.base + path, rate, duration_s, self.args.connections, self.args.drain
         )
-        service0, redis0 = self.service.cpu_s(), self.redis.cpu_s()
+        service0, redis0, machine0 = self.service.cpu_s(), self.redis.cpu_s(), machine_jiffies()
         report = run_async(run_load(config, prefixes))
-        service1, redis1 = self.service.cpu_s(), self.redis.cpu_s()
+        service1, redis1, machine1 = self.service.cpu_s(), self.redis.cpu_s(), machine_jiffies()
         used = sorted((t - service0.get(pid, 0.0) for pid, t in service1.items()), reverse=True)
-        return Measured(report, tuple(used), redis1 - redis0, judge(report, self.args.p99_bound_ms))
+        verdict = judge(report, self.args.p99_bound_ms)
+        steal = steal_share(machine0, machine1)
+        return Measured(report, tuple(used), redis1 - redis0, verdict, steal)
 
     def wait_quiet(self) -> None:
         """Wait until the service and Redis have worked off what earlier runs queued (their
@@ -148,7 +159,7 @@ class Bench:
             f"p50 {r.latency.p50_ms:7.2f}  p99 {r.latency.p99_ms:8.2f}  "
             f"p99.9 {r.latency.p999_ms:8.2f} ms  errors {r.error_count:,}  "
             f"late {r.late_sends:,}  client CPU {100 * r.client_cpu_share:3.0f}%  "
-            f"load {load_average()}  -> {m.verdict}",
+            f"load {load_average()}  steal {m.stolen()}  -> {m.verdict}",
             flush=True,
         )
         return m
@@ -216,6 +227,16 @@ def phase_steady(bench: Bench) -> None:
     split = ", ".join(f"{t:.1f}" for t in m.process_cpu_s if t >= 0.05)
     print(f"service processes CPU seconds, busiest first: {split}")
     print(f"load average      {load_average()} (1 minute; {os.cpu_count()} CPUs)")
+    print(
+        f"stolen            {m.stolen()} of the machine's CPU time went to other virtual "
+        "machines during the run (steal, /proc/stat)"
+    )
+    if m.steal is not None and m.steal > STEAL_WARN_SHARE:
+        print(
+            "WARNING: the hypervisor ran other guests on this machine's CPUs during the run: "
+            "latencies then include waits no code change can remove, and figures from such a "
+            "run do not compare with a quiet one."
+        )
     if args.workers > 1 and m.process_cpu_s and m.process_cpu_s[0] > 0.75 * m.service_cpu_s:
         print(
             "WARNING: one service process did most of the work: the client's keep-alive "
