@@ -1,4 +1,5 @@
-"""How the service benchmark reads the CPU time the hypervisor gave to other guests.
+"""Two measuring helpers of the benchmarks: the CPU time the hypervisor gave to other guests
+(service benchmark), and the instruction count read off callgrind's report (bench_instructions).
 
 Source for the field order of the ``cpu`` line: proc(5), ``/proc/stat``: user, nice, system,
 idle, iowait, irq, softirq, steal, guest, guest_nice, in clock ticks; guest and guest_nice are
@@ -11,6 +12,7 @@ from pathlib import Path
 
 import pytest
 
+from loadtest.bench_instructions import COLLECTED
 from loadtest.bench_processes import machine_jiffies, steal_share
 
 STAT = (
@@ -45,3 +47,14 @@ def test_this_machine_reads() -> None:
     assert first is not None
     steal, total = first
     assert 0 <= steal <= total
+
+
+def test_the_count_is_read_off_callgrind_s_closing_lines() -> None:
+    """The closing lines of ``valgrind --tool=callgrind`` 3.19 (copied from a run here)."""
+    stderr = (
+        "==9657== \n==9657== Events    : Ir\n==9657== Collected : 417546455\n"
+        "==9657== \n==9657== I   refs:      417,546,455\n"
+    )
+    found = COLLECTED.search(stderr)
+    assert found is not None
+    assert int(found.group(1)) == 417_546_455
