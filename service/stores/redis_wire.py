@@ -28,7 +28,7 @@ from __future__ import annotations
 import asyncio
 import contextlib
 from collections import deque
-from collections.abc import Iterable, Sequence
+from collections.abc import Callable, Iterable, Sequence
 from typing import Any, cast
 
 from redis.exceptions import ConnectionError as RedisConnectionError
@@ -157,8 +157,7 @@ class Wire:
                         reply = exc
                     self._hand_over(reply)
             while True:
-                for reply in await replies.next_batch():
-                    self._hand_over(reply)
+                await replies.hand_over_next(self._hand_over)
         except BaseException as exc:  # lost, out of step, or closing: nobody gets a reply now
             # Given up before the first await below: an exchange that came meanwhile would wait
             # on this connection for replies that cannot come (and take the next one's).
@@ -246,13 +245,12 @@ class _HiredisReplies:
             return None
         return cls(stream, reader, more, getattr(hiredis, "PushNotification", None))
 
-    async def next_batch(self) -> list[Any]:
-        """Wait for bytes; the replies they complete (possibly none)."""
+    async def hand_over_next(self, hand_over: Callable[[Any], None]) -> None:
+        """Wait for bytes; hand over each reply they complete (possibly none), in order."""
         data = await self._stream.read(READ_SIZE)
         if not data:
             raise RedisConnectionError("Connection closed by server.")
         self._reader.feed(data)
-        out = []
         reply = self._reader.gets()
         while reply is not self._more:
             if isinstance(reply, RedisConnectionError):
@@ -260,6 +258,5 @@ class _HiredisReplies:
             if isinstance(reply, list) and reply and isinstance(reply[0], RedisConnectionError):
                 raise reply[0]
             if self._push is None or not isinstance(reply, self._push):  # pushes: nobody asked
-                out.append(reply)
+                hand_over(reply)
             reply = self._reader.gets()
-        return out
