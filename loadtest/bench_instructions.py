@@ -29,7 +29,7 @@ from pathlib import Path
 if __package__ in (None, ""):  # run as a script: find the package
     sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
-from loadtest.bench_layers import asgi_post, bodies, run_loop
+from loadtest.bench_layers import asgi_post, bodies, run_with_redis
 from loadtest.bench_processes import BenchError, RedisProcess
 from loadtest.load_http import scenario_events
 
@@ -108,13 +108,7 @@ def main(argv: list[str] | None = None) -> int:
     try:
         if not args.inner:
             return _outer(args)
-        with tempfile.TemporaryDirectory(prefix="emberscore-instructions-") as folder:
-            redis = RedisProcess(Path(folder))
-            try:
-                redis.wait_ready()
-                run_loop(_inner(args, redis))
-            finally:
-                redis.stop()
+        run_with_redis("emberscore-instructions-", lambda redis: _inner(args, redis))
         return 0
     except BenchError as exc:
         print(f"bench_instructions: {exc}", file=sys.stderr)

@@ -27,7 +27,7 @@ import secrets
 import sys
 import tempfile
 import time
-from collections.abc import Awaitable, Callable, Sequence
+from collections.abc import Awaitable, Callable, Coroutine, Sequence
 from functools import partial
 from pathlib import Path
 from typing import Any
@@ -186,19 +186,25 @@ def run_loop(main: Any) -> None:
     uvloop.run(main)
 
 
+def run_with_redis(prefix: str, main: Callable[[RedisProcess], Coroutine[Any, Any, Any]]) -> None:
+    """Start a redis-server of our own (its files in a temporary folder named ``prefix``...),
+    run ``main(redis)`` on the event loop of `run_loop`, and stop the server by its pid."""
+    with tempfile.TemporaryDirectory(prefix=prefix) as folder:
+        redis = RedisProcess(Path(folder))
+        try:
+            redis.wait_ready()
+            run_loop(main(redis))
+        finally:
+            redis.stop()
+
+
 def main(argv: list[str] | None = None) -> int:
     p = argparse.ArgumentParser(description=(__doc__ or "").splitlines()[0])
     p.add_argument("--events", type=int, default=4_000, help="events per figure (4000)")
     p.add_argument("--concurrency", type=int, default=8, help="requests at a time (8)")
     p.add_argument("--seed", type=int, default=7, help="scenario seed")
     args = p.parse_args(argv)
-    with tempfile.TemporaryDirectory(prefix="emberscore-layers-") as folder:
-        redis = RedisProcess(Path(folder))
-        try:
-            redis.wait_ready()
-            run_loop(main_async(args, redis))
-        finally:
-            redis.stop()
+    run_with_redis("emberscore-layers-", lambda redis: main_async(args, redis))
     return 0
 
 
